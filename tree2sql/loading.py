@@ -1,0 +1,84 @@
+"""Read a model file safely.
+
+skops files are loaded with an allow-list of scikit-learn types. Pickle and joblib files
+can run arbitrary code while loading, so they load only when the user says so.
+"""
+
+from __future__ import annotations
+
+import pickle
+import zipfile
+from pathlib import Path
+from typing import Any
+
+from tree2sql.errors import UserError
+
+# Types a skops file may hold beyond those skops trusts by default: tree internals that
+# scikit-learn stores as extension types. Anything else is refused by name.
+SKOPS_ALLOWED_TYPES = frozenset({
+    "sklearn.tree._tree.Tree",
+    "sklearn._loss.link.IdentityLink",
+    "sklearn._loss.link.LogitLink",
+    "sklearn._loss.link.MultinomialLogit",
+    "sklearn._loss.loss.HalfBinomialLoss",
+    "sklearn._loss.loss.HalfMultinomialLoss",
+    "sklearn._loss.loss.HalfSquaredError",
+    "sklearn.ensemble._hist_gradient_boosting.predictor.TreePredictor",
+    "sklearn.ensemble._hist_gradient_boosting.binning._BinMapper",
+    "collections.OrderedDict",
+})
+
+PICKLE_FIX = (
+    "pickle and joblib files can run code when loaded. If you trust this file, pass "
+    "--allow-pickle; better, save the model as skops: "
+    "skops.io.dump(model, 'model.skops')"
+)
+
+
+def load_model(path: str | Path, *, allow_pickle: bool = False) -> Any:
+    """Return the estimator stored in `path` (skops, or pickle/joblib when allowed)."""
+    path = Path(path)
+    if not path.is_file():
+        raise UserError(f"model file {str(path)!r} does not exist",
+                        "give the path of a model saved with skops.io.dump")
+    if path.stat().st_size == 0:
+        raise UserError(f"model file {str(path)!r} is empty", "save the model again")
+    if zipfile.is_zipfile(path):
+        return _load_skops(path)
+    if not allow_pickle:
+        raise UserError(f"{str(path)!r} is not a skops file; it looks like a pickle or "
+                        "joblib file", PICKLE_FIX)
+    return _load_pickle(path)
+
+
+def _load_skops(path: Path) -> Any:
+    import skops.io
+
+    try:
+        untrusted = skops.io.get_untrusted_types(file=path)
+    except Exception as exc:  # skops raises several types for a damaged archive
+        raise UserError(f"cannot read skops file {str(path)!r}: {exc}",
+                        "check that the file is complete; save the model again") from exc
+    refused = sorted(set(untrusted) - SKOPS_ALLOWED_TYPES)
+    if refused:
+        raise UserError(
+            f"skops file {str(path)!r} holds types tree2sql does not load: "
+            + ", ".join(refused),
+            "save only a supported scikit-learn tree model (see `tree2sql compile --help`)",
+        )
+    try:
+        return skops.io.load(path, trusted=list(untrusted))
+    except Exception as exc:
+        raise UserError(f"cannot load skops file {str(path)!r}: {exc}",
+                        "check that the file is complete; save the model again") from exc
+
+
+def _load_pickle(path: Path) -> Any:
+    import joblib
+
+    try:
+        return joblib.load(path)
+    except (pickle.UnpicklingError, EOFError, ValueError, KeyError, IndexError,
+            AttributeError, ModuleNotFoundError, TypeError) as exc:
+        raise UserError(f"cannot load {str(path)!r} as pickle/joblib: {exc}",
+                        "check that the file is a complete model file") from exc

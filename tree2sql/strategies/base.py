@@ -1,0 +1,68 @@
+"""The seam between the neutral model and a SQL shape.
+
+A strategy decides how each tree's leaf is found in SQL. The compiler around it owns the
+rest (input casting, missing values, refused rows, averaging in tree order, labels), so
+every strategy shares one set of exactness rules and goes through the same verifier.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from tree2sql.dialects import Profile
+from tree2sql.exact import bounds
+from tree2sql.forest import Forest
+
+LeafValue = Callable[[int], str]  # node id of a leaf -> SQL literal for that leaf
+
+
+@dataclass
+class Context:
+    """What a strategy may use: the forest, the dialect, and the input relation.
+
+    `source` is a relation with the pass-through key columns (`keys`, already quoted),
+    the guard column `ok` and one double column per model feature (`features[i]`, with
+    NULL for missing). `bounds[t][n]` is node n's double bound in tree t (x <= bound
+    goes left; see tree2sql.exact).
+    """
+
+    forest: Forest
+    profile: Profile
+    source: str
+    keys: list[str]
+    ok: str
+    features: list[str]
+    bounds: list[np.ndarray]
+
+    @classmethod
+    def build(cls, forest: Forest, profile: Profile, source: str, keys: list[str], ok: str,
+              features: list[str]) -> Context:
+        return cls(forest, profile, source, keys, ok, features,
+                   [bounds(tree.threshold, forest.comparison) for tree in forest.trees])
+
+    def prefix(self, name: str) -> str:
+        """A quoted internal name (never clashes with user columns, see compiler)."""
+        return self.profile.quote(f"__t2s_{name}")
+
+
+class Strategy(ABC):
+    """One SQL shape for evaluating trees. Subclasses register in strategies/__init__."""
+
+    name: str = ""
+    summary: str = ""
+
+    def stages(self, ctx: Context) -> list[tuple[str, str]]:
+        """Extra CTEs (name, SELECT body) after the input; the last one becomes the source."""
+        return []
+
+    @abstractmethod
+    def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
+        """SQL expression, over the (last stage's) source, giving the tree's leaf value."""
+
+    def statement_size_estimate(self, forest: Forest) -> int:
+        """Rough statement bytes, used by the planner to respect engine limits."""
+        return 60 * forest.n_nodes * max(1, forest.n_outputs)

@@ -1,0 +1,80 @@
+"""Each tree as one nested CASE expression over the feature columns.
+
+The plainest shape: readable, portable to every dialect, and exact. It costs one branch per
+node visited per row; engines that evaluate CASE per vector pay per node instead (see
+benchmarks/README.md), which is why other strategies exist.
+"""
+
+from __future__ import annotations
+
+import math
+
+from tree2sql.forest import LEAF, Tree
+from tree2sql.strategies.base import Context, LeafValue, Strategy
+
+ALWAYS_LEFT = "left"
+ALWAYS_RIGHT = "right"
+
+
+def split_conditions(ctx: Context, tree_index: int) -> list[str | None]:
+    """Per node: the SQL condition sending a row left, or ALWAYS_LEFT / ALWAYS_RIGHT.
+
+    Rows with a missing value follow the model's missing direction; where the model
+    cannot take missing values the compiler has already given such rows NULL scores.
+    """
+    tree: Tree = ctx.forest.trees[tree_index]
+    bound = ctx.bounds[tree_index]
+    routes_missing = ctx.forest.accepts_missing
+    conditions: list[str | None] = [None] * tree.n_nodes
+    for node in map(int, (tree.left != LEAF).nonzero()[0]):
+        x = ctx.features[tree.feature[node]]
+        missing_left = routes_missing and bool(tree.missing_left[node])
+        b = float(bound[node])
+        if b == math.inf:
+            conditions[node] = ALWAYS_LEFT if missing_left or not routes_missing \
+                else f"{x} IS NOT NULL"
+        elif b == -math.inf:
+            conditions[node] = f"{x} IS NULL" if missing_left else ALWAYS_RIGHT
+        elif missing_left:
+            conditions[node] = f"({x} <= {ctx.profile.double(b)} OR {x} IS NULL)"
+        else:
+            conditions[node] = f"{x} <= {ctx.profile.double(b)}"
+    return conditions
+
+
+def nested_case(tree: Tree, conditions: list[str | None], leaf_value: LeafValue) -> str:
+    """Render one tree without recursion (fully grown trees can be thousands deep)."""
+    left, right = tree.left, tree.right
+    out: list[str] = []
+    stack: list[int | str] = [0]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, str):
+            out.append(item)
+            continue
+        if left[item] == LEAF:
+            out.append(leaf_value(item))
+            continue
+        condition = conditions[item]
+        if condition == ALWAYS_LEFT:
+            stack.append(int(left[item]))
+        elif condition == ALWAYS_RIGHT:
+            stack.append(int(right[item]))
+        else:
+            out.append(f"CASE WHEN {condition} THEN ")
+            stack.extend((" END", int(right[item]), " ELSE ", int(left[item])))
+    return "".join(out)
+
+
+class NestedCase(Strategy):
+    name = "nested_case"
+    summary = "one nested CASE expression per tree"
+
+    def __init__(self) -> None:
+        self._conditions: dict[int, list[str | None]] = {}
+
+    def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
+        if tree_index not in self._conditions:
+            self._conditions[tree_index] = split_conditions(ctx, tree_index)
+        return nested_case(ctx.forest.trees[tree_index], self._conditions[tree_index],
+                           leaf_value)
