@@ -17,3 +17,11 @@ def need(condition: bool, reason: str) -> None:
     if REQUIRE_ENGINES:
         pytest.fail(f"required engine unavailable: {reason}")
     pytest.skip(reason)
+
+
+@pytest.fixture(scope="session")
+def pg_url() -> str:
+    """SQLAlchemy URL of the loopback PostgreSQL server started by .ci/services.sh."""
+    url = os.environ.get("TREE2SQL_PG_URL", "")
+    need(bool(url), "PostgreSQL: run `eval \"$(bash .ci/services.sh)\"` to start one")
+    return url
