@@ -110,9 +110,23 @@ def _load(model: Path, allow_pickle: bool):
     return estimator, ingest(estimator)
 
 
-def _request(table: str, keys, columns, prefix, combine, strategy) -> ScoringRequest:
+def _request(table: str, keys, columns, prefix, combine, strategy,
+             reasons: int = 0) -> ScoringRequest:
     return ScoringRequest(table=table, keys=tuple(keys), columns=_parse_columns(columns),
-                          prefix=prefix, combine=Combine(combine), strategy=strategy)
+                          prefix=prefix, combine=Combine(combine), strategy=strategy,
+                          reasons=reasons)
+
+
+reasons_option = click.option(
+    "--reasons", type=click.IntRange(min=0), default=0, metavar="K",
+    help="Also return, per row, the K features that contributed most to the score: "
+         "<prefix>reason_<i> (feature name) and <prefix>reason_<i>_contribution (signed), "
+         "i = 1..K. Contributions come from the decision paths (each split's change in "
+         "node value, credited to its feature, averaged over the trees) and add up, with "
+         "the model's average root value, to the explained output: a regressor's value, "
+         "a binary classifier's probability of its second class, a multiclass model's "
+         "probability of the predicted class. Ranked by absolute contribution; equal ones "
+         "in the model's feature order. Forests and decision trees only. Default 0: none.")
 
 
 @cli.command("compile")
@@ -123,8 +137,9 @@ def _request(table: str, keys, columns, prefix, combine, strategy) -> ScoringReq
               help="Table or view holding the rows to score; schema.table allowed.")
 @click.option("--output", "-o", type=click.Path(dir_okay=False, path_type=Path),
               help="Write the SQL to this file instead of standard output.")
+@reasons_option
 def compile_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, dialect, table,
-                output):
+                output, reasons):
     """Compile MODEL into one SELECT statement that scores TABLE.
 
     The statement returns the key columns, one probability column per class (in the
@@ -137,7 +152,7 @@ def compile_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, d
           --key shipment_id -o score_shipments.sql
     """
     _, forest = _load(model, allow_pickle)
-    request = _request(table, keys, columns, prefix, combine, strategy)
+    request = _request(table, keys, columns, prefix, combine, strategy, reasons)
     started = time.perf_counter()
     with progress("compiling trees", len(forest.trees)) as advance:
         compiled = compile_forest(forest, request, dialect, advance)
@@ -146,23 +161,33 @@ def compile_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, d
     click.echo(f"compiled {forest.n_nodes} nodes in {seconds:.2f} s, "
                f"{len(compiled.sql.encode())} bytes", err=True)
     if output:
-        output.write_text(compiled.sql + "\n", encoding="utf-8")
+        output.write_text(compiled.script + "\n", encoding="utf-8")
         click.echo(f"wrote {output}", err=True)
     else:
-        click.echo(compiled.sql)
+        click.echo(compiled.script)
 
 
 @cli.command("verify")
 @model_options
-@click.option("--data", required=True, type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--data", default=None, type=click.Path(dir_okay=False, path_type=Path),
               help="Rows to check: a CSV or Parquet file, or a DuckDB file with --table.")
+@click.option("--url", default=None, metavar="URL",
+              help="Instead of --data: check rows where they live, in this database "
+                   "(SQLAlchemy URL), with --table or --deployed.")
 @click.option("--table", default=None, metavar="NAME",
-              help="The table to read when --data is a DuckDB database file.")
+              help="The table to read when --data is a DuckDB database file; with --url, "
+                   "the table whose rows are scored.")
+@click.option("--deployed", default=None, metavar="NAME",
+              help="With --url: check this deployed view/table/function itself and record "
+                   "the result in the manifest.")
+@click.option("--sample", default=None, type=click.IntRange(min=1), metavar="N",
+              help="With --url: check N random rows instead of all.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Also write the report as JSON (rows, disagreements, max_abs_diff, ties, "
                    "null_scores, ...).")
-def verify_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, data, table,
-               report_path):
+@reasons_option
+def verify_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, data, url, table,
+               deployed, sample, report_path, reasons):
     """Prove the compiled SQL agrees with MODEL on the rows in --data, row for row.
 
     Loads the rows into embedded DuckDB, runs the compiled SQL there, predicts the same
@@ -177,12 +202,24 @@ def verify_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, da
     from tree2sql.sources import ROW_KEY, load_file
     from tree2sql.verify import verify
 
-    estimator, forest = _load(model, allow_pickle)
-    engine, loaded = load_file(data, table, add_row_key=not keys)
-    request = _request(loaded, keys or (ROW_KEY,), columns, prefix, combine, strategy)
-    rows = int(engine.query(f'SELECT COUNT(*) AS n FROM "{loaded}"')["n"][0])
-    with progress("verifying rows", rows) as advance:
-        report = verify(estimator, forest, engine, request, advance)
+    if (data is None) == (url is None) or (data and (deployed or sample)):
+        raise UserError("give exactly one of --data (a file) or --url (a database); "
+                        "--deployed and --sample go with --url",
+                        "e.g. --data holdout.parquet, or --url URL --table T --sample 1000")
+    if url and reasons:
+        raise UserError("--reasons is checked on rows from --data for now, not with --url",
+                        "verify the reason codes with --data FILE, or drop --reasons")
+    if url:
+        report = verify_live(model, allow_pickle, keys, columns, prefix, combine, strategy,
+                             url, table, deployed, sample)
+    else:
+        estimator, forest = _load(model, allow_pickle)
+        engine, loaded = load_file(data, table, add_row_key=not keys)
+        request = _request(loaded, keys or (ROW_KEY,), columns, prefix, combine, strategy,
+                           reasons)
+        rows = int(engine.query(f'SELECT COUNT(*) AS n FROM "{loaded}"')["n"][0])
+        with progress("verifying rows", rows) as advance:
+            report = verify(estimator, forest, engine, request, advance)
     click.echo(report.to_text())
     if report_path:
         report_path.write_text(report.to_json() + "\n", encoding="utf-8")
@@ -217,6 +254,17 @@ def strategies_cmd():
 
     for name, cls in sorted(STRATEGIES.items()):
         click.echo(f"{name:16} {cls.summary}")
+
+
+from tree2sql.cli_inspect import inspect_cmd  # noqa: E402  (kept beside its registration)
+
+cli.add_command(inspect_cmd)
+
+from tree2sql.cli_deploy import deploy_cmd, restore_cmd, status_cmd, verify_live  # noqa: E402
+
+cli.add_command(deploy_cmd)
+cli.add_command(status_cmd)
+cli.add_command(restore_cmd)
 
 
 def main() -> None:

@@ -18,12 +18,18 @@ from tree2sql import __version__
 from tree2sql.dialects import Profile, load_profile
 from tree2sql.errors import UserError
 from tree2sql.exact import FLOAT32_OVERFLOW
-from tree2sql.forest import Forest
+from tree2sql.forest import Forest, Link, Task
+from tree2sql.input_sql import InputRenderer
+from tree2sql.reasons import ReasonSql, check_reasons, reason_column_names
 from tree2sql.strategies import Context, Strategy, choose
 
 INTERNAL_PREFIX = "__t2s_"
 PLUS = "\n    + "
 TERMS_PER_STAGE = 100  # trees summed per CTE stage; see _partial_sum_stages
+# EXP's argument is kept within +-EXP_LIMIT: exp(700) ~ 1e304 stays finite and exp(-700) ~
+# 1e-304 stays a normal double (no overflow/underflow errors, as PostgreSQL raises); past it
+# a probability is within 1e-300 of 0 or 1.
+EXP_LIMIT = 700.0
 CAUTION = ("Scores can decide things about people: verify this SQL against the model "
            "(tree2sql verify) before use, keep model and SQL under review, and follow your "
            "organisation's model-risk practice and local rules.")
@@ -46,6 +52,7 @@ class ScoringRequest:
     prefix: str = "score_"
     combine: Combine = Combine.AVERAGE
     strategy: str | None = None
+    reasons: int = 0  # K reason codes per row (tree2sql.reasons); 0 = none
 
 
 @dataclass(frozen=True)
@@ -58,16 +65,34 @@ class CompiledQuery:
     score_columns: list[str]
     label_column: str | None
     feature_columns: list[str]  # table column per model feature, in model order
+    # Statements to run first, in order (a strategy's model table); empty for most shapes.
+    setup: tuple[str, ...] = ()
+    reason_columns: tuple[str, ...] = ()  # (name, contribution) x K, after the scores
+
+    @property
+    def script(self) -> str:
+        """Setup statements, then the SELECT: what `compile` prints and a DBA runs."""
+        return "".join(f"{statement};\n\n" for statement in self.setup) + self.sql
 
 
 def feature_columns(forest: Forest, columns: Mapping[str, str]) -> list[str]:
-    """Table column per model feature: the model's own names unless mapped explicitly."""
-    unknown = sorted(set(columns) - set(forest.feature_names))
+    """Table column per model input (a pipeline's raw columns, else the model's features):
+    the model's own names unless mapped explicitly."""
+    names = forest.input_names
+    unknown = sorted(set(columns) - set(names))
     if unknown:
         raise UserError("the column map names features the model does not have: "
                         + ", ".join(map(repr, unknown)),
-                        "model features are: " + ", ".join(map(repr, forest.feature_names)))
-    return [columns.get(name, name) for name in forest.feature_names]
+                        "model features are: " + ", ".join(map(repr, names)))
+    return [columns.get(name, name) for name in names]
+
+
+def text_columns(forest: Forest, columns: Mapping[str, str]) -> list[str]:
+    """Table columns the SQL reads as text (they feed a pipeline's string encoders)."""
+    if forest.inputs is None:
+        return []
+    return [c for c, text in zip(feature_columns(forest, columns), forest.inputs.text,
+                                 strict=True) if text]
 
 
 def score_column_names(forest: Forest, prefix: str) -> tuple[list[str], str | None]:
@@ -76,6 +101,8 @@ def score_column_names(forest: Forest, prefix: str) -> tuple[list[str], str | No
     Labels that would give the same name once case is folded (engines differ on case)
     get their class position appended, so every output column stays distinct.
     """
+    if forest.task is Task.ANOMALY:
+        return [f"{prefix}value", f"{prefix}decision"], None
     if not forest.is_classifier:
         return [f"{prefix}value"], None
     names = [f"{prefix}prob_{label}" for label in forest.classes]
@@ -84,23 +111,28 @@ def score_column_names(forest: Forest, prefix: str) -> tuple[list[str], str | No
     return names, f"{prefix}class"
 
 
-def compile_forest(forest: Forest, request: ScoringRequest, dialect: str = "duckdb",
+def compile_forest(forest: Forest, request: ScoringRequest, dialect: str | Profile = "duckdb",
                    progress: Callable[[int], None] | None = None) -> CompiledQuery:
-    profile = load_profile(dialect)
+    """`dialect` is a profile name, or a Profile (e.g. one with tighter limits, for tests)."""
+    profile = dialect if isinstance(dialect, Profile) else load_profile(dialect)
     features = feature_columns(forest, request.columns)
     scores, label = score_column_names(forest, request.prefix)
-    outputs = [*request.keys, *scores, *([label] if label else [])]
+    reasons = reason_column_names(request.prefix, request.reasons) if request.reasons else []
+    if request.reasons:
+        check_reasons(forest, request.reasons, request.combine is Combine.MAJORITY)
+    outputs = [*request.keys, *scores, *([label] if label else []), *reasons]
     _check_names(request, outputs)
     strategy, reason = choose(forest, profile, request.strategy)
     builder = _QueryBuilder(forest, profile, request, features, strategy)
-    sql = builder.render(scores, label, progress)
+    sql = builder.render(scores, label, progress, reasons)
+    setup = tuple(strategy.setup_statements(builder._context()))
     header = (f"-- tree2sql {__version__}: {forest.source}\n"
               f"-- model fingerprint sha256:{forest.fingerprint()}\n"
               f"-- dialect {profile.name}, strategy {strategy.name}, "
               f"combine {request.combine.value}\n"
               f"-- {CAUTION}\n")
     return CompiledQuery(header + sql, profile.name, strategy.name, reason, outputs,
-                         scores, label, features)
+                         scores, label, features, setup, tuple(reasons))
 
 
 def compile_leaf_ids(forest: Forest, request: ScoringRequest, dialect: str = "duckdb") -> str:
@@ -134,28 +166,51 @@ class _QueryBuilder:
         q = profile.quote
         self.keys = [q(k) for k in request.keys]
         self.internal = lambda name: q(INTERNAL_PREFIX + name)
-        self.features = [self.internal(f"f{i}") for i in range(forest.n_features)]
+        self.features = [self.internal(f"f{i}")
+                         for i in range(forest.n_features + len(forest.derived))]
 
     def render(self, scores: list[str], label: str | None,
-               progress: Callable[[int], None] | None) -> str:
+               progress: Callable[[int], None] | None, reasons: Sequence[str] = ()) -> str:
         p, ok = self.profile, self.internal("ok")
         ctx = self._context()
         ctes = [*self._input_stages(), *self.strategy.stages(ctx)]
         sums = self._sums(ctx, progress)
         ctes += self._partial_sum_stages(sums, ctes[-1][0])
+        explain = ReasonSql(self.forest, p, self.internal, self.request.reasons) \
+            if reasons else None
+        if explain:
+            ctes.append(explain.leaf_stage(
+                ctes[-1][0], lambda t, value: self.strategy.tree_term(ctx, t, value)))
+            credit_sums = explain.terms()
+            ctes += self._partial_sum_stages(credit_sums, ctes[-1][0], tag="c")
         source = ctes[-1][0]
-        divisor = p.double(len(self.forest.trees))
-        means = [f"CASE WHEN {ok} = 1 THEN ({s[-1]}) / {divisor} END AS {self.internal(f'p{k}')}"
-                 for k, s in enumerate(sums)]
-        ctes.append((self.internal("scores"),
-                     f"SELECT {self._select_list(self.keys + means)}\nFROM {source}"))
+        linked = self.forest.aggregation.link is not Link.IDENTITY
+        raw_name = "r" if linked else "p"
+        if self.forest.aggregation.mean:
+            divisor = p.double(len(self.forest.trees))
+            raws = [f"({s[-1]}) / {divisor}" for s in sums]
+        else:
+            raws = [s[-1] for s in sums]
+        raws = [f"CASE WHEN {ok} = 1 THEN {r} END AS {self.internal(f'{raw_name}{k}')}"
+                for k, r in enumerate(raws)]
+        if explain:
+            raws += explain.credit_items(credit_sums, ok)
+        ctes.append((self.internal("raw" if linked else "scores"),
+                     f"SELECT {self._select_list(self.keys + raws)}\nFROM {source}"))
+        if linked:
+            ctes += self._link_stages()
         final = self.keys + [f"{self.internal(f'p{k}')} AS {p.quote(name)}"
                              for k, name in enumerate(scores)]
         if label:
-            final.append(f"{self._argmax()} AS {p.quote(label)}")
+            final.append(f"{self._label()} AS {p.quote(label)}")
+        last = self.internal("scores")
+        if explain:
+            ctes += explain.stages(last, lambda per_class: self._argmax("p", per_class))
+            last = ctes[-1][0]
+            final += explain.output_items(list(reasons))
         with_clause = ",\n".join(f"{name} AS (\n{body}\n)" for name, body in ctes)
         return (f"WITH {with_clause}\nSELECT {self._select_list(final)}\n"
-                f"FROM {self.internal('scores')}")
+                f"FROM {last}")
 
     def render_leaf_ids(self) -> str:
         ctx = self._context()
@@ -180,32 +235,65 @@ class _QueryBuilder:
 
     def _input_body(self) -> str:
         p = self.profile
-        cast = [f"{p.missing_as_null(p.cast_double(p.quote(col)))} AS {alias}"
-                for col, alias in zip(self.feature_columns, self.features, strict=True)]
+        inputs = self.features[:self.forest.n_features]
+        if self.forest.inputs is None:
+            values = [p.missing_as_null(p.cast_double(p.quote(col)))
+                      for col in self.feature_columns]
+        else:  # a pipeline: preprocessing computed from the raw columns
+            renderer = InputRenderer(self.forest.inputs, p, self.feature_columns)
+            values = renderer.features()
+            refused = renderer.refused()
+            if refused:
+                values.append(f"CASE WHEN {refused} THEN 1 ELSE 0 END")
+                inputs = [*inputs, self.internal("refused")]
+        cast = [f"{value} AS {alias}" for value, alias in zip(values, inputs, strict=True)]
         return (f"SELECT {self._select_list(self.keys + cast)}\n"
                 f"FROM {p.qualified(self.request.table)}")
 
+    def _derived_columns(self) -> list[str]:
+        """Category tests as numeric inputs: 0 (left set), 1 (right set), NULL otherwise."""
+        double, columns = self.profile.double, []
+        for i, test in enumerate(self.forest.derived):
+            x = self.features[test.feature]
+            branches = [f"WHEN {x} IN ({', '.join(map(double, values))}) THEN {double(side)}"
+                        for side, values in ((0.0, test.left), (1.0, test.right)) if values]
+            body = f"CASE {' '.join(branches)} END" if branches else f"CAST(NULL AS " \
+                f"{self.profile.double_type})"
+            columns.append(f"{body} AS {self.features[self.forest.n_features + i]}")
+        return columns
+
     def _guard_body(self) -> str:
         """ok = 1 when the library would score the row, else 0 (its scores become NULL)."""
-        limit = self.profile.double(FLOAT32_OVERFLOW)
-        refused = [f"ABS({f}) >= {limit}" for f in self.features]
+        inputs = self.features[:self.forest.n_features]
+        refused = []
+        if self.forest.refuses_float32_overflow:
+            limit = self.profile.double(FLOAT32_OVERFLOW)
+            refused += [f"ABS({f}) >= {limit}" for f in inputs]
         if not self.forest.accepts_missing:
-            refused += [f"{f} IS NULL" for f in self.features]
-        guard = f"CASE WHEN {' OR '.join(refused)} THEN 0 ELSE 1 END AS {self.internal('ok')}"
-        return f"SELECT *, {guard}\nFROM {self.internal('input')}"
+            refused += [f"{f} IS NULL" for f in inputs]
+        if self.forest.inputs is not None and self.forest.inputs.refusals:
+            refused.append(f"{self.internal('refused')} = 1")  # the preprocessing refuses
+        guard = f"CASE WHEN {' OR '.join(refused)} THEN 0 ELSE 1 END" if refused else "1"
+        items = [f"{guard} AS {self.internal('ok')}", *self._derived_columns()]
+        return f"SELECT *, {', '.join(items)}\nFROM {self.internal('input')}"
 
     def _sums(self, ctx: Context, progress: Callable[[int], None] | None) -> list[list[str]]:
-        """Per output, the per-tree terms in tree order."""
+        """Per raw output, its initial value (summed models) then per-tree terms in tree order."""
+        aggregation, double = self.forest.aggregation, self.profile.double
         leaf_values = self._leaf_value_functions()
-        terms: list[list[str]] = [[] for _ in leaf_values]
+        terms: list[list[str]] = [[] if aggregation.mean else [double(aggregation.initial[k])]
+                                  for k in range(len(leaf_values))]
+        owner = aggregation.tree_output
         for t in range(len(self.forest.trees)):
             for k, leaf_value in enumerate(leaf_values):
-                terms[k].append(self.strategy.tree_term(ctx, t, leaf_value(t)))
+                if owner is None or owner[t] == k:
+                    terms[k].append(self.strategy.tree_term(ctx, t, leaf_value(t)))
             if progress:
                 progress(1)
         return terms
 
-    def _partial_sum_stages(self, terms: list[list[str]], source: str) -> list[tuple[str, str]]:
+    def _partial_sum_stages(self, terms: list[list[str]], source: str,
+                            tag: str = "") -> list[tuple[str, str]]:
         """Sum left to right in tree order, `TERMS_PER_STAGE` trees per CTE stage.
 
         One long `a + b + c ...` is as deep as it is long, and engines cap expression
@@ -226,10 +314,10 @@ class _QueryBuilder:
                 chunk = column[start:start + TERMS_PER_STAGE]
                 if running[k] is not None:
                     chunk = [running[k], *chunk]
-                name = self.internal(f"s{stage}_{k}")
+                name = self.internal(f"{tag}s{stage}_{k}")
                 items.append(f"{PLUS.join(chunk)} AS {name}")
                 running[k] = name
-            name = self.internal(f"sum{stage}")
+            name = self.internal(f"{tag}sum{stage}")
             body = f"SELECT *,\n  {self._select_list(items)}\nFROM {source}"
             stages.append((name, body))
             source = name
@@ -241,19 +329,84 @@ class _QueryBuilder:
         """Per output column: tree index -> (leaf node -> SQL literal)."""
         trees, double = self.forest.trees, self.profile.double
         if self.request.combine is Combine.MAJORITY:
-            if not self.forest.is_classifier:
-                raise UserError("majority voting needs a classifier",
-                                "drop --combine majority for a regressor")
+            if not self.forest.is_classifier or not self.forest.aggregation.mean:
+                raise UserError("majority voting needs a classifier whose trees vote",
+                                "drop --combine majority for this model")
             votes = [np.argmax(tree.value, axis=1) for tree in trees]
             return [lambda t, k=k: (lambda n: "1" if votes[t][n] == k else "0")
                     for k in range(self.forest.n_outputs)]
-        return [lambda t, k=k: (lambda n: double(trees[t].value[n, k]))
-                for k in range(self.forest.n_outputs)]
+        column = (lambda k: 0) if self.forest.aggregation.tree_output else (lambda k: k)
+        return [lambda t, k=k: (lambda n: double(trees[t].value[n, column(k)]))
+                for k in range(self.forest.n_raw)]
 
-    def _argmax(self) -> str:
-        """First class with the largest probability, NULL when the scores are NULL."""
+    def _link_stages(self) -> list[tuple[str, str]]:
+        """From raw scores `r<k>` (CTE raw) to outputs `p<k>` (CTE scores), raws kept.
+
+        Same arithmetic as scikit-learn/scipy: sigmoid 1 / (1 + exp(-r)) with p0 = 1 - p1;
+        softmax subtracts the row's largest raw score, exponentiates, divides by the sum
+        taken left to right.
+        """
+        double, link = self.profile.double, self.forest.aggregation.link
+        r = [self.internal(f"r{k}") for k in range(self.forest.n_raw)]
         p = [self.internal(f"p{k}") for k in range(self.forest.n_outputs)]
+        lo, hi, one = double(-EXP_LIMIT), double(EXP_LIMIT), double(1.0)
+        keep = self.keys + r
+        if link is Link.ISOLATION:  # numpy: -(2 ** -(depths / divisor)) - offset_
+            aggregation = self.forest.aggregation
+            s = f"-POWER({double(2.0)}, -({r[0]} / {double(aggregation.divisor)}))"
+            items = [f"{s} AS {p[0]}", f"({s}) - {double(aggregation.offset)} AS {p[1]}"]
+            return [(self.internal("scores"),
+                     f"SELECT {self._select_list(keep + items)}\nFROM {self.internal('raw')}")]
+        if link in (Link.EXP, Link.SIGMOID):
+            if link is Link.EXP:  # past EXP_LIMIT the value is too large to trust: NULL
+                items = [f"CASE WHEN {r[0]} > {hi} THEN NULL ELSE EXP({r[0]}) END AS {p[0]}"]
+            else:
+                p1 = (f"CASE WHEN {r[0]} < {lo} THEN {double(0.0)} WHEN {r[0]} > {hi} "
+                      f"THEN {one} ELSE {one} / ({one} + EXP(-{r[0]})) END")
+                items = [f"{one} - ({p1}) AS {p[0]}", f"{p1} AS {p[1]}"]
+            return [(self.internal("scores"),
+                     f"SELECT {self._select_list(keep + items)}\nFROM {self.internal('raw')}")]
+        top, e = self.internal("top"), [self.internal(f"e{k}") for k in range(len(r))]
+        shifted = [f"{rk} - {top}" for rk in r]
+        exps = [f"CASE WHEN {d} < {lo} THEN {double(0.0)} ELSE EXP({d}) END AS {ek}"
+                for d, ek in zip(shifted, e, strict=True)]
+        total = " + ".join(e)
+        shares = [f"{ek} / ({total}) AS {pk}" for ek, pk in zip(e, p, strict=True)]
+        return [
+            (self.internal("top"), f"SELECT *, {self._first_max(r)} AS {top}\n"
+                                   f"FROM {self.internal('raw')}"),
+            (self.internal("exp"), f"SELECT {self._select_list(keep + exps)}\n"
+                                   f"FROM {self.internal('top')}"),
+            (self.internal("scores"), f"SELECT {self._select_list(keep + shares)}\n"
+                                      f"FROM {self.internal('exp')}"),
+        ]
+
+    @staticmethod
+    def _first_max(columns: list[str]) -> str:
+        """The largest of `columns` (NULL when they are NULL), without GREATEST/MAX(a, b)."""
+        branches = [f"WHEN {' AND '.join(f'{c} >= {o}' for o in columns[k + 1:])} THEN {c}"
+                    for k, c in enumerate(columns[:-1])]
+        return f"CASE {' '.join(branches)} ELSE {columns[-1]} END"
+
+    def _label(self) -> str:
+        """The library's label: argmax of the probabilities (forests) or of the raw
+        scores (boosting; one raw score decides a binary model by its sign)."""
+        aggregation = self.forest.aggregation
+        if aggregation.mean or aggregation.link is Link.IDENTITY:
+            return self._argmax("p")
+        if self.forest.n_raw > 1:
+            return self._argmax("r")
         labels = [self.profile.label(c) for c in self.forest.classes]
+        r0, zero = self.internal("r0"), self.profile.double(0.0)
+        sign = ">=" if aggregation.positive_from_zero else ">"
+        return (f"CASE WHEN {r0} IS NULL THEN NULL WHEN {r0} {sign} {zero} THEN {labels[1]} "
+                f"ELSE {labels[0]} END")
+
+    def _argmax(self, column: str, results: list[str] | None = None) -> str:
+        """First class with the largest `<column>k`, NULL when the scores are NULL; gives
+        that class's label, or its entry of `results` when given."""
+        p = [self.internal(f"{column}{k}") for k in range(self.forest.n_outputs)]
+        labels = results or [self.profile.label(c) for c in self.forest.classes]
         branches = [f"WHEN {p[0]} IS NULL THEN NULL"]
         for k in range(len(p) - 1):
             beats_rest = " AND ".join(f"{p[k]} >= {other}" for other in p[k + 1:])

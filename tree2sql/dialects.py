@@ -14,7 +14,7 @@ from typing import Any
 from sqlglot import exp
 
 from tree2sql.errors import UserError
-from tree2sql.exact import float_text
+from tree2sql.exact import SHORTEST, float_text
 from tree2sql.resources import data_dir
 
 
@@ -28,7 +28,12 @@ class Profile:
     double_literal: str  # template over {text}: shortest round-trip text with exponent
     nan_to_null: str  # template over {x}: the expression with NaN turned into NULL
     boolean_literals: bool  # TRUE/FALSE exist as values (else 1/0)
+    integer_type: str = "INTEGER"
+    row_number: str = "ROW_NUMBER() OVER ()"  # a per-row id within one statement
+    nan_literal: str | None = None  # SQL for a NaN double; None when the engine has none
+    infinity_literal: str | None = None  # SQL for +infinity; None when the engine has none
     limits: dict[str, Any] = field(default_factory=dict)
+    limit_sources: dict[str, str] = field(default_factory=dict)  # limit key -> where from
     strategies: tuple[str, ...] = ("nested_case",)
     ddl: dict[str, str] = field(default_factory=dict)
     raw: dict[str, Any] = field(default_factory=dict, repr=False)
@@ -45,7 +50,9 @@ class Profile:
         return exp.Literal.string(str(text)).sql(dialect=self.sqlglot_dialect)
 
     def double(self, value: float) -> str:
-        return self.double_literal.format(text=float_text(value))
+        """A double literal; `literal_style` in the profile picks how (see tree2sql.exact)."""
+        style = self.raw.get("literal_style", SHORTEST)
+        return self.double_literal.format(text=float_text(value, style))
 
     def cast_double(self, sql: str) -> str:
         return f"CAST({sql} AS {self.double_type})"
@@ -68,6 +75,14 @@ class Profile:
     def limit(self, key: str, default: Any = None) -> Any:
         return self.limits.get(key, default)
 
+    def render_ddl(self, kind: str, **parts: str) -> str:
+        """A DDL statement from the profile's `[ddl]` template `kind` (view, table, ...)."""
+        template = self.ddl.get(kind)
+        if template is None:
+            raise UserError(f"the {self.name} profile has no {kind!r} statement form",
+                            f"add `{kind}` under [ddl] in dialects/{self.name}.toml")
+        return template.format(**parts)
+
 
 def available() -> list[str]:
     return sorted(p.stem for p in data_dir("dialects").glob("*.toml"))
@@ -89,7 +104,12 @@ def load_profile(name: str) -> Profile:
             double_literal=raw.get("double_literal", "{text}"),
             nan_to_null=raw.get("nan_to_null", "{x}"),
             boolean_literals=raw.get("boolean_literals", True),
+            integer_type=raw.get("integer_type", "INTEGER"),
+            row_number=raw.get("row_number", "ROW_NUMBER() OVER ()"),
+            nan_literal=raw.get("nan_literal"),
+            infinity_literal=raw.get("infinity_literal"),
             limits=raw.get("limits", {}),
+            limit_sources=raw.get("limit_sources", {}),
             strategies=tuple(raw.get("strategies", ["nested_case"])),
             ddl=raw.get("ddl", {}),
             raw=raw,

@@ -13,6 +13,8 @@ from enum import Enum
 
 import numpy as np
 
+from tree2sql.inputs import InputPlan
+
 LEAF = -1  # child index marking a leaf, as in scikit-learn's tree arrays
 
 
@@ -31,6 +33,55 @@ class Comparison(Enum):
 class Task(Enum):
     CLASSIFICATION = "classification"
     REGRESSION = "regression"
+    ANOMALY = "anomaly"  # outputs: the library's score_samples and decision_function
+
+
+class Link(Enum):
+    """The function from the summed raw scores to the model's outputs."""
+
+    IDENTITY = "identity"  # outputs are the raw scores (forests, boosted regressors)
+    SIGMOID = "sigmoid"  # binary: p1 = 1 / (1 + exp(-raw)), p0 = 1 - p1
+    SOFTMAX = "softmax"  # multiclass: exp(raw_k - max) / sum of those
+    EXP = "exp"  # log-link regressors (Poisson, gamma): exp(raw)
+    ISOLATION = "isolation"  # s = -2 ** -(raw / divisor); decision = s - offset
+
+
+@dataclass(frozen=True)
+class Aggregation:
+    """How per-tree leaf values become the model's outputs.
+
+    `mean`: raw_k is the sum over trees in tree order divided by the number of trees (the
+    forests' rule). Otherwise raw_k = initial[k] + the sum, in tree order, of the leaf
+    values of the trees feeding output k (boosting; learning rates are already folded
+    into the leaf values). `tree_output[t]` names the raw output tree t adds to; None
+    means every tree adds its value row to every output. `positive_from_zero` is the
+    binary label rule on the single raw score: True for raw >= 0, False for raw > 0.
+    """
+
+    mean: bool = True
+    initial: tuple[float, ...] = ()
+    link: Link = Link.IDENTITY
+    tree_output: tuple[int, ...] | None = None
+    positive_from_zero: bool = True
+    divisor: float = 1.0  # ISOLATION: trees x average path length of the subsample
+    offset: float = 0.0  # ISOLATION: the library's offset_
+
+
+MEAN = Aggregation()
+
+
+@dataclass(frozen=True)
+class CategoryTest:
+    """A derived input: 0 when `feature`'s value is one of `left`, 1 when one of `right`,
+    missing otherwise (unknown categories follow the node's missing direction).
+
+    Trees test it with threshold 0.5 like any numeric feature; its index is
+    `n_features + position in Forest.derived`.
+    """
+
+    feature: int
+    left: tuple[float, ...]
+    right: tuple[float, ...]
 
 
 @dataclass(frozen=True, eq=False)
@@ -56,15 +107,16 @@ class Tree:
         return self.left == LEAF
 
     def depth(self) -> int:
-        """Longest root-to-leaf edge count, computed without recursion."""
-        depth = np.zeros(self.n_nodes, dtype=np.int64)
-        best = 0
-        for node in self.preorder():
-            if self.left[node] != LEAF:
-                depth[self.left[node]] = depth[self.right[node]] = depth[node] + 1
-            else:
-                best = max(best, int(depth[node]))
-        return best
+        """Longest root-to-leaf edge count: one numpy step per level, no per-node Python
+        (the planner asks for it per strategy and dialect)."""
+        frontier = np.zeros(1, dtype=np.int64)
+        levels = 0
+        while True:
+            inner = frontier[self.left[frontier] != LEAF]
+            if inner.size == 0:
+                return levels
+            frontier = np.concatenate((self.left[inner], self.right[inner]))
+            levels += 1
 
     def preorder(self) -> list[int]:
         """Node ids root first, left subtree before right (any node numbering)."""
@@ -108,11 +160,15 @@ class Tree:
 
 @dataclass(frozen=True, eq=False)
 class Forest:
-    """A tree ensemble whose prediction is the mean of its trees' leaf values.
+    """A tree ensemble: trees, how their leaf values combine, and the model's input rules.
 
     `classes` holds the original labels (any type the library accepts) in the model's
     class order; it is None for a regressor. `accepts_missing` is False when the library
     refuses rows with missing values, in which case such rows get NULL scores.
+    `refuses_float32_overflow` is True when the library refuses rows with infinite values
+    or values beyond float32's range (it casts X to float32 and checks it); models that
+    read X in float64 or accept infinities score those rows. `aggregation` defaults to
+    the mean of the trees' values; `derived` lists category tests the trees may split on.
     """
 
     task: Task
@@ -122,6 +178,10 @@ class Forest:
     accepts_missing: bool
     classes: tuple | None = None
     source: str = ""  # what was ingested, for messages and manifests
+    refuses_float32_overflow: bool = True
+    aggregation: Aggregation = MEAN
+    derived: tuple[CategoryTest, ...] = ()
+    inputs: InputPlan | None = None  # a pipeline's preprocessing over raw columns
     _fingerprint: list = field(default_factory=list, repr=False)
 
     @property
@@ -129,8 +189,32 @@ class Forest:
         return len(self.feature_names)
 
     @property
+    def input_names(self) -> tuple[str, ...]:
+        """Names of the columns the SQL reads: a pipeline's raw columns, else the features."""
+        return self.inputs.columns if self.inputs is not None else self.feature_names
+
+    @property
     def n_outputs(self) -> int:
+        """Score columns: one probability per class, or one value."""
+        if self.classes is not None and self.aggregation != MEAN:
+            return len(self.classes)
+        if self.task is Task.ANOMALY:
+            return 2
         return int(self.trees[0].value.shape[1])
+
+    @property
+    def n_raw(self) -> int:
+        """Sums over trees the outputs derive from (one for binary boosting)."""
+        if self.aggregation.tree_output is not None:
+            return len(self.aggregation.initial)
+        return int(self.trees[0].value.shape[1])
+
+    def trees_feeding(self, k: int) -> list[int]:
+        """Indexes of the trees adding to raw output k, in tree order."""
+        owner = self.aggregation.tree_output
+        if owner is None:
+            return list(range(len(self.trees)))
+        return [t for t, o in enumerate(owner) if o == k]
 
     @property
     def n_nodes(self) -> int:
@@ -152,6 +236,11 @@ class Forest:
             digest = hashlib.sha256()
             header = (self.task.value, self.comparison.name, self.accepts_missing,
                       self.feature_names, tuple(map(repr, self.classes or ())))
+            if self.aggregation != MEAN or self.derived or not self.refuses_float32_overflow:
+                header += (repr(self.aggregation), repr(self.derived),
+                           self.refuses_float32_overflow)
+            if self.inputs is not None:
+                header += (repr(self.inputs),)
             digest.update(repr(header).encode())
             for tree in self.trees:
                 for array in (tree.feature, tree.threshold, tree.left, tree.right,

@@ -26,7 +26,12 @@ SKOPS_ALLOWED_TYPES = frozenset({
     "sklearn.ensemble._hist_gradient_boosting.predictor.TreePredictor",
     "sklearn.ensemble._hist_gradient_boosting.binning._BinMapper",
     "collections.OrderedDict",
+    # Pipelines: encoders keep their output dtype and imputers their fit dtype as numpy
+    # dtype objects (data, not code).
+    "numpy.dtype",
 })
+
+ZIP_MAGIC = b"PK\x03\x04"  # a skops file is a zip archive; this opens its first entry
 
 PICKLE_FIX = (
     "pickle and joblib files can run code when loaded. If you trust this file, pass "
@@ -45,6 +50,10 @@ def load_model(path: str | Path, *, allow_pickle: bool = False) -> Any:
         raise UserError(f"model file {str(path)!r} is empty", "save the model again")
     if zipfile.is_zipfile(path):
         return _load_skops(path)
+    with path.open("rb") as handle:
+        if handle.read(len(ZIP_MAGIC)) == ZIP_MAGIC:  # a zip archive missing its end
+            raise UserError(f"skops file {str(path)!r} is damaged or truncated",
+                            "copy or save the model again (skops.io.dump)")
     if not allow_pickle:
         raise UserError(f"{str(path)!r} is not a skops file; it looks like a pickle or "
                         "joblib file", PICKLE_FIX)

@@ -9,8 +9,9 @@ from tree2sql.errors import UserError
 
 
 def check_source(engine: Engine, table: str, features: Sequence[str],
-                 keys: Sequence[str]) -> None:
-    """Every feature and key column present by exact name; features numeric; keys unique."""
+                 keys: Sequence[str], text: Sequence[str] = ()) -> None:
+    """Every feature and key column present by exact name; keys unique; features numeric,
+    except the `text` ones, which feed string encoders and must hold text."""
     try:
         columns = {c.name: c for c in engine.columns(table)}
     except UserError:
@@ -38,10 +39,16 @@ def check_source(engine: Engine, table: str, features: Sequence[str],
         raise UserError(f"table {table!r} does not fit the model: " + "; ".join(problems),
                         "map model features to columns with --column FEATURE=COLUMN, "
                         "or name the key columns with --key")
-    wrong = [f"{n!r} is {columns[n].type}" for n in features if not columns[n].numeric]
+    wrong = [f"{n!r} is {columns[n].type}" for n in features
+             if n not in text and not columns[n].numeric]
     if wrong:
         raise UserError("feature columns must be numbers: " + ", ".join(wrong),
                         "cast or encode these columns to numbers in a view, and score the view")
+    wrong = [f"{n!r} is {columns[n].type}" for n in text if columns[n].numeric]
+    if wrong:
+        raise UserError("columns that feed the pipeline's string categories must hold text: "
+                        + ", ".join(wrong), "cast these columns to text in a view, and score "
+                        "the view")
     _check_keys(engine, table, keys)
 
 

@@ -34,6 +34,10 @@ def load_file(path: str | Path, table: str | None = None,
     except duckdb.Error as exc:
         raise UserError(f"cannot read {str(path)!r}: {exc}",
                         "check the file's format (CSV with a header row, or Parquet)") from exc
+    # Checked before column types: a header-only CSV reads as all-text columns.
+    if not engine.query(f'SELECT 1 AS "one" FROM "{LOADED_TABLE}" LIMIT 1')["one"].size:
+        raise UserError(f"data file {str(path)!r} has no rows",
+                        "give a file with a header and at least one row")
     return engine, LOADED_TABLE
 
 

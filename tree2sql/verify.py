@@ -1,9 +1,10 @@
 """Run the compiled SQL, predict the same rows with the model, compare by key, report.
 
 Agreement rules (DESIGN.md): probabilities within 1e-12 absolute (regression values within
-1e-12 relative to max(1, |value|)); labels equal unless the model's top two probabilities
-are within the tolerance (a tie, counted apart); NULL scores exactly where the library
-refuses the row or cannot take its missing values.
+1e-12 relative to max(1, |value|), as are all outputs after a link function such as a
+sigmoid, whose EXP may differ from numpy's in the last bits); labels equal unless the
+model's top two probabilities are within the tolerance (a tie, counted apart); NULL scores
+exactly where the library refuses the row or cannot take its missing values.
 """
 
 from __future__ import annotations
@@ -21,12 +22,14 @@ from tree2sql.compiler import (
     ScoringRequest,
     compile_forest,
     compile_leaf_ids,
+    text_columns,
 )
 from tree2sql.engines import Engine
 from tree2sql.errors import UserError
 from tree2sql.exact import bounds
-from tree2sql.forest import Forest
-from tree2sql.reference import Reference, apply_leaves, predict_reference
+from tree2sql.forest import Forest, Link
+from tree2sql.inputs import InputPlan
+from tree2sql.reference import Reference, apply_leaves, predict_reference, raw_frame
 from tree2sql.schema import check_source
 
 TOLERANCE = 1e-12
@@ -53,6 +56,10 @@ class Report:
     model: str = ""
     fingerprint: str = ""
     examples: list[dict[str, Any]] = field(default_factory=list)
+    reasons: int = 0  # K reason codes checked per row (0: not asked for)
+    reason_disagreements: int = 0
+    reason_ties: int = 0
+    reason_max_abs_diff: float = 0.0
 
     @property
     def agrees(self) -> bool:
@@ -75,6 +82,10 @@ class Report:
             f"({self.null_missing} missing values the model cannot take, "
             f"{self.null_refused} values the library refuses)",
         ]
+        if self.reasons:
+            lines.append(f"  reason codes        {self.reason_disagreements} disagreements, "
+                         f"{self.reason_ties} ties (top {self.reasons}, largest difference "
+                         f"{self.reason_max_abs_diff:.3g})")
         for example in self.examples:
             lines.append("  row " + json.dumps(example, default=_json_default))
         return "\n".join(lines)
@@ -89,18 +100,22 @@ def _json_default(value: Any) -> Any:
 @dataclass
 class ScoredRows:
     keys: list[np.ndarray]
-    X: np.ndarray  # (rows, features) float64, NaN for NULL/NaN
+    X: Any  # (rows, features) float64, NaN for NULL/NaN; a pipeline's raw-column frame
     values: np.ndarray  # (rows, outputs) float64, NaN for NULL
     labels: np.ndarray | None
+    reasons: dict[str, np.ndarray] = field(default_factory=dict)  # reason column -> values
 
 
 def verify(estimator: Any, forest: Forest, engine: Engine, request: ScoringRequest,
            progress: Callable[[int], None] | None = None,
            compiled: CompiledQuery | None = None) -> Report:
     """Score `request.table` in `engine` with the compiled SQL and compare with the model."""
-    check_source(engine, request.table, _feature_columns(forest, request), request.keys)
+    check_source(engine, request.table, _feature_columns(forest, request), request.keys,
+                 text_columns(forest, request.columns))
     compiled = compiled or compile_forest(forest, request, engine.dialect)
-    scored = fetch_scored_rows(engine, compiled, request)
+    for statement in compiled.setup:  # e.g. the model table a strategy reads
+        engine.execute(statement)
+    scored = fetch_scored_rows(engine, compiled, request, forest.inputs)
     if len(scored.X) == 0:
         raise UserError(f"table {request.table!r} has no rows to verify",
                         "load data into it, or point --data at a file with rows")
@@ -109,6 +124,8 @@ def verify(estimator: Any, forest: Forest, engine: Engine, request: ScoringReque
     report.dialect, report.strategy = compiled.dialect, compiled.strategy
     report.combine, report.model = request.combine.value, forest.source
     report.fingerprint = forest.fingerprint()
+    if compiled.reason_columns:
+        _check_reasons(estimator, forest, scored, reference, compiled, report)
     bad = _disagreeing_rows(forest, scored, reference)
     if len(bad):
         report.examples = explain(estimator, forest, engine, request, scored,
@@ -122,22 +139,33 @@ def _feature_columns(forest: Forest, request: ScoringRequest) -> list[str]:
     return feature_columns(forest, request.columns)
 
 
-def fetch_scored_rows(engine: Engine, compiled: CompiledQuery,
-                      request: ScoringRequest) -> ScoredRows:
-    """Scores from the SQL and the same rows' features, aligned by ordering on the keys."""
+def fetch_scored_rows(engine: Engine, compiled: CompiledQuery, request: ScoringRequest,
+                      inputs: InputPlan | None = None) -> ScoredRows:
+    """Scores from the SQL and the same rows' features, aligned by ordering on the keys.
+
+    With a pipeline's input plan the raw columns are fetched as they are (text stays
+    text) and X is the frame the pipeline reads; otherwise X is the double matrix.
+    """
     from tree2sql.dialects import load_profile
 
     p = load_profile(engine.dialect)
     order = ", ".join(p.quote(k) for k in request.keys)
-    features = ", ".join(f"{p.cast_double(p.quote(c))} AS {p.quote(f'__t2s_x{i}')}"
-                         for i, c in enumerate(compiled.feature_columns))
+    text = inputs.text if inputs is not None else (False,) * len(compiled.feature_columns)
+    features = ", ".join(f"{p.quote(c) if t else p.cast_double(p.quote(c))} "
+                         f"AS {p.quote(f'__t2s_x{i}')}"
+                         for i, (c, t) in enumerate(zip(compiled.feature_columns, text,
+                                                        strict=True)))
     raw = engine.query(f"SELECT {order}, {features} FROM {p.qualified(request.table)} "
                        f"ORDER BY {order}")
     scored = engine.query(f"SELECT * FROM (\n{compiled.sql}\n) {p.quote('__t2s_s')} "
                           f"ORDER BY {order}")
     n_features = len(compiled.feature_columns)
-    X = np.column_stack([_floats(raw[f"__t2s_x{i}"]) for i in range(n_features)]) \
-        if len(raw[request.keys[0]]) else np.empty((0, n_features))
+    if inputs is not None:
+        X = raw_frame(inputs, [_objects(raw[f"__t2s_x{i}"]) if t else _floats(raw[f"__t2s_x{i}"])
+                               for i, t in enumerate(text)])
+    else:
+        X = np.column_stack([_floats(raw[f"__t2s_x{i}"]) for i in range(n_features)]) \
+            if len(raw[request.keys[0]]) else np.empty((0, n_features))
     values = np.column_stack([_floats(scored[c]) for c in compiled.score_columns]) \
         if len(X) else np.empty((0, len(compiled.score_columns)))
     labels = None
@@ -148,7 +176,8 @@ def fetch_scored_rows(engine: Engine, compiled: CompiledQuery,
         if not np.array_equal(np.asarray(raw[k]), np.asarray(scored[k])):
             raise UserError("the SQL returned other rows than the table holds",
                             "check that the key columns are unique and not NULL")
-    return ScoredRows(keys, X, values, labels)
+    reasons = {c: np.asarray(_objects(scored[c]), dtype=object) for c in compiled.reason_columns}
+    return ScoredRows(keys, X, values, labels, reasons)
 
 
 def _floats(column: Any) -> np.ndarray:
@@ -186,10 +215,7 @@ def _row_verdicts(forest: Forest, scored: ScoredRows, ref: Reference) -> dict[st
     null_mismatch = sql_null != ref.expected_null
     both = ~sql_null & ~ref.expected_null
     diff = np.where(both[:, None], np.abs(scored.values - np.nan_to_num(ref.values)), 0.0)
-    if forest.is_classifier:
-        allowed = np.full(len(diff), TOLERANCE)
-    else:
-        allowed = TOLERANCE * np.maximum(1.0, np.abs(np.nan_to_num(ref.values[:, 0])))
+    allowed = _allowed(forest, ref)
     value_bad = both & (diff.max(axis=1, initial=0.0) > allowed)
     tie = np.zeros(len(diff), dtype=bool)
     label_bad = np.zeros(len(diff), dtype=bool)
@@ -202,6 +228,31 @@ def _row_verdicts(forest: Forest, scored: ScoredRows, ref: Reference) -> dict[st
         label_bad = both & ~same & ~tie
     return {"null_mismatch": null_mismatch, "value_bad": value_bad, "label_bad": label_bad,
             "tie": tie, "diff": diff, "sql_null": sql_null}
+
+
+def _allowed(forest: Forest, ref: Reference) -> np.ndarray:
+    """Largest difference allowed per row (see the module docstring)."""
+    if forest.aggregation.link is not Link.IDENTITY:  # exp in SQL vs numpy: last bits
+        return TOLERANCE * np.maximum(1.0, np.abs(np.nan_to_num(ref.values)).max(axis=1))
+    if forest.is_classifier:
+        return np.full(len(ref.values), TOLERANCE)
+    return TOLERANCE * np.maximum(1.0, np.abs(np.nan_to_num(ref.values[:, 0])))
+
+
+def _check_reasons(estimator: Any, forest: Forest, scored: ScoredRows, ref: Reference,
+                   compiled: CompiledQuery, report: Report) -> None:
+    """Reason codes against path attribution from the library's own trees."""
+    from tree2sql.reasons_check import check_reason_columns
+
+    columns = compiled.reason_columns
+    names = np.column_stack([scored.reasons[c] for c in columns[0::2]])
+    credits = np.column_stack([_floats(scored.reasons[c]) for c in columns[1::2]])
+    verdict = check_reason_columns(estimator, forest, scored.X, names, credits,
+                                   ref.expected_null, ref.labels, _allowed(forest, ref))
+    report.reasons = len(columns) // 2
+    report.reason_disagreements, report.reason_ties = verdict.disagreements, verdict.ties
+    report.reason_max_abs_diff = verdict.max_abs_diff
+    report.disagreements += verdict.disagreements
 
 
 def compare(forest: Forest, scored: ScoredRows, ref: Reference) -> Report:
@@ -242,7 +293,6 @@ def explain(estimator: Any, forest: Forest, engine: Engine, request: ScoringRequ
                               f"ORDER BY {order}")
     examples = []
     for row in rows:
-        x = scored.X[row]
         example: dict[str, Any] = {
             "key": [k[row] for k in scored.keys],
             "sql": scored.values[row].tolist(),
@@ -250,7 +300,8 @@ def explain(estimator: Any, forest: Forest, engine: Engine, request: ScoringRequ
         }
         if forest.is_classifier:
             example["sql_label"], example["model_label"] = scored.labels[row], ref.labels[row]
-        if not ref.expected_null[row]:
+        if not ref.expected_null[row] and hasattr(estimator, "apply") and not forest.derived:
+            x = scored.X[row]
             model_leaves = apply_leaves(estimator, x[None, :])[0]
             example.update(_first_divergence(forest, x, model_leaves,
                                              [int(leaves_sql[f"__t2s_leaf{t}"][row])

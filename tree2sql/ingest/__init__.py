@@ -42,4 +42,10 @@ def ingest(estimator: Any) -> Forest:
     return reader(estimator)
 
 
-from tree2sql.ingest import sklearn_trees  # noqa: E402,F401  (registers its readers)
+# Each family module registers its readers on import.
+from tree2sql.ingest import (  # noqa: E402,F401
+    isolation,
+    pipelines,
+    sklearn_boosting,
+    sklearn_trees,
+)

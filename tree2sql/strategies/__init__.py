@@ -1,17 +1,60 @@
-"""SQL shapes for evaluating trees, and the planner that picks one per dialect."""
+"""SQL shapes for evaluating trees, and the planner that picks one per dialect.
+
+The planner tries the shapes the profile lists, in its order, and takes the first whose
+estimated demands fit every limit the profile states (see dialects/README.md). The
+compiler adds a little of its own to each demand: one CASE around the final sum, and a
+chain of up to `TERMS_PER_STAGE` additions per sum stage.
+"""
 
 from __future__ import annotations
+
+import math
 
 from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
 from tree2sql.forest import Forest
-from tree2sql.strategies.base import Context, Strategy
+from tree2sql.strategies.base import Context, Needs, Strategy
+from tree2sql.strategies.depth_staged import DepthStaged
+from tree2sql.strategies.model_table import ModelTable
 from tree2sql.strategies.nested_case import NestedCase
 from tree2sql.strategies.node_arrays import NodeArrays
+from tree2sql.strategies.text_arrays import TextArrays
 
-STRATEGIES: dict[str, type[Strategy]] = {cls.name: cls for cls in (NestedCase, NodeArrays)}
+STRATEGIES: dict[str, type[Strategy]] = {
+    cls.name: cls for cls in (NestedCase, NodeArrays, DepthStaged, ModelTable, TextArrays)}
+AST_ELEMENTS_PER_BYTE = 1 / 6  # rough parse-tree nodes per statement byte (estimate)
 
-__all__ = ["STRATEGIES", "Context", "Strategy", "choose"]
+__all__ = ["STRATEGIES", "Context", "Needs", "Strategy", "choose", "limit_problem"]
+
+
+def limit_problem(needs: Needs, forest: Forest, profile: Profile) -> str | None:
+    """The first profile limit the shape would break, as a sentence; None when it fits."""
+    from tree2sql.compiler import TERMS_PER_STAGE
+
+    lim = profile.limit
+    sum_stages = math.ceil(len(forest.trees) / TERMS_PER_STAGE)
+    checks = [
+        ("statement_bytes", needs.statement_bytes, "statement of about {need} bytes"),
+        ("case_depth", needs.case_depth + 1, "CASE nested {need} levels deep"),
+        ("expression_depth",
+         needs.expression_depth + min(len(forest.trees), TERMS_PER_STAGE) + 4,
+         "expression about {need} levels deep"),
+        ("select_columns", needs.select_columns + forest.n_outputs * sum_stages,
+         "select list of about {need} columns"),
+        ("ast_elements", int(needs.statement_bytes * AST_ELEMENTS_PER_BYTE),
+         "about {need} parse-tree elements"),
+    ]
+    for key, need, what in checks:
+        limit = lim(key)
+        if limit and need > limit:
+            source = profile.limit_sources.get(key, "")
+            return (f"{what.format(need=need)} > {profile.name}'s {key} limit {limit}"
+                    + (f" ({source})" if source else ""))
+    inline_nodes = profile.raw.get("inline_nodes")
+    if needs.inline and inline_nodes and forest.n_nodes > inline_nodes:
+        return (f"{forest.n_nodes} nodes written into the statement > {profile.name}'s "
+                f"inline_nodes {inline_nodes}")
+    return None
 
 
 def choose(forest: Forest, profile: Profile, forced: str | None = None) -> tuple[Strategy, str]:
@@ -20,16 +63,24 @@ def choose(forest: Forest, profile: Profile, forced: str | None = None) -> tuple
         if forced not in STRATEGIES:
             raise UserError(f"unknown strategy {forced!r}",
                             "use one of: " + ", ".join(sorted(STRATEGIES)))
-        return STRATEGIES[forced](), f"{forced} (forced by --strategy)"
+        strategy = STRATEGIES[forced]()
+        problem = limit_problem(strategy.needs(forest, profile), forest, profile)
+        warning = f"; beware: {problem}" if problem else ""
+        return strategy, f"{forced} (forced by --strategy){warning}"
+    passed_over = []
     for name in profile.strategies:
         cls = STRATEGIES.get(name)
         if cls is None:
-            continue
+            raise UserError(f"the {profile.name} profile lists an unknown strategy {name!r}",
+                            "use one of: " + ", ".join(sorted(STRATEGIES)))
         strategy = cls()
-        limit = profile.limit("statement_bytes")
-        size = strategy.statement_size_estimate(forest)
-        if limit and size > limit:
-            continue
-        return strategy, f"{name}: first shape in the {profile.name} profile that fits its limits"
-    raise UserError(f"no SQL shape fits {profile.name}'s limits for this model",
+        problem = limit_problem(strategy.needs(forest, profile), forest, profile)
+        if problem is None:
+            reason = f"{name}: first shape in the {profile.name} profile that fits its limits"
+            if passed_over:
+                reason += " (" + "; ".join(passed_over) + ")"
+            return strategy, reason
+        passed_over.append(f"not {name}: {problem}")
+    raise UserError(f"no SQL shape fits {profile.name}'s limits for this model: "
+                    + "; ".join(passed_over),
                     "force one with --strategy, or reduce the model's size")

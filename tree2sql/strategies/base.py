@@ -20,6 +20,22 @@ from tree2sql.forest import Forest
 LeafValue = Callable[[int], str]  # node id of a leaf -> SQL literal for that leaf
 
 
+@dataclass(frozen=True)
+class Needs:
+    """What a shape asks of an engine, for the planner to hold against the profile's limits.
+
+    Figures are estimates meant as upper bounds: `case_depth` and `expression_depth` of
+    the deepest expression the strategy writes (the compiler adds its own), the widest
+    select list, and whether the model's nodes are written into the statement itself.
+    """
+
+    statement_bytes: int
+    case_depth: int = 1
+    expression_depth: int = 4
+    select_columns: int = 0
+    inline: bool = True
+
+
 @dataclass
 class Context:
     """What a strategy may use: the forest, the dialect, and the input relation.
@@ -49,6 +65,16 @@ class Context:
         return self.profile.quote(f"__t2s_{name}")
 
 
+def literal_bytes(profile: Profile) -> int:
+    """Length of the longest double literal the profile writes (17 digits, 3-digit exponent)."""
+    return len(profile.double(-2.2250738585072014e-308))
+
+
+def feature_bytes(profile: Profile, forest: Forest) -> int:
+    """Length of the longest quoted internal feature column name."""
+    return len(profile.quote(f"__t2s_f{forest.n_features}"))
+
+
 class Strategy(ABC):
     """One SQL shape for evaluating trees. Subclasses register in strategies/__init__."""
 
@@ -66,3 +92,12 @@ class Strategy(ABC):
     def statement_size_estimate(self, forest: Forest) -> int:
         """Rough statement bytes, used by the planner to respect engine limits."""
         return 60 * forest.n_nodes * max(1, forest.n_outputs)
+
+    def needs(self, forest: Forest, profile: Profile) -> Needs:
+        """Estimated demands on the engine (default: flat expressions, size estimate)."""
+        return Needs(self.statement_size_estimate(forest), case_depth=1, expression_depth=8,
+                     select_columns=len(forest.trees) + forest.n_features)
+
+    def setup_statements(self, ctx: Context) -> list[str]:
+        """Statements to run, in order, before the SELECT (e.g. create and fill a table)."""
+        return []

@@ -9,24 +9,36 @@ from __future__ import annotations
 
 import math
 
-from tree2sql.forest import LEAF, Tree
-from tree2sql.strategies.base import Context, LeafValue, Strategy
+from tree2sql.dialects import Profile
+from tree2sql.forest import LEAF, Forest, Tree
+from tree2sql.strategies.base import (
+    Context,
+    LeafValue,
+    Needs,
+    Strategy,
+    feature_bytes,
+    literal_bytes,
+)
 
 ALWAYS_LEFT = "left"
 ALWAYS_RIGHT = "right"
 
 
-def split_conditions(ctx: Context, tree_index: int) -> list[str | None]:
+def split_conditions(ctx: Context, tree_index: int,
+                     nodes: list[int] | None = None) -> list[str | None]:
     """Per node: the SQL condition sending a row left, or ALWAYS_LEFT / ALWAYS_RIGHT.
 
     Rows with a missing value follow the model's missing direction; where the model
     cannot take missing values the compiler has already given such rows NULL scores.
+    `nodes` limits the work to those split nodes (the others stay None).
     """
     tree: Tree = ctx.forest.trees[tree_index]
     bound = ctx.bounds[tree_index]
     routes_missing = ctx.forest.accepts_missing
     conditions: list[str | None] = [None] * tree.n_nodes
-    for node in map(int, (tree.left != LEAF).nonzero()[0]):
+    if nodes is None:
+        nodes = (tree.left != LEAF).nonzero()[0].tolist()
+    for node in nodes:
         x = ctx.features[tree.feature[node]]
         missing_left = routes_missing and bool(tree.missing_left[node])
         b = float(bound[node])
@@ -78,3 +90,15 @@ class NestedCase(Strategy):
             self._conditions[tree_index] = split_conditions(ctx, tree_index)
         return nested_case(ctx.forest.trees[tree_index], self._conditions[tree_index],
                            leaf_value)
+
+    def needs(self, forest: Forest, profile: Profile) -> Needs:
+        """Every node written once per output; CASE nests as deep as the deepest tree."""
+        internal = sum(int((tree.left != LEAF).sum()) for tree in forest.trees)
+        leaves = forest.n_nodes - internal
+        per_output = (internal * (50 + 2 * feature_bytes(profile, forest)
+                                  + literal_bytes(profile))
+                      + leaves * literal_bytes(profile) + 8 * len(forest.trees))
+        depth = max(tree.depth() for tree in forest.trees)
+        return Needs(per_output * forest.n_outputs + 200 * forest.n_features + 4000,
+                     case_depth=depth, expression_depth=2 * depth + 6,
+                     select_columns=forest.n_features + 4)

@@ -58,7 +58,7 @@ class NodeArrays(Strategy):
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         forest, p = ctx.forest, ctx.profile
-        null_slot = forest.n_features + 1
+        null_slot = len(ctx.features) + 1  # after the inputs and any derived ones
         model_columns = []
         for t, tree in enumerate(forest.trees):
             order, position = self._layout(ctx, t)
@@ -71,6 +71,8 @@ class NodeArrays(Strategy):
             goes_left = tree.missing_left[order] & forest.accepts_missing
             missing = np.where(leaf, np.arange(1, len(order) + 1),
                                np.where(goes_left, left, right))
+            # A +inf bound sends every value left, +inf included; DOUBLE_MAX would not.
+            right = np.where(np.isposinf(ctx.bounds[t][order]) & ~leaf, left, right)
             columns = {
                 "feature": [str(v) for v in feature.tolist()],
                 "bound": [p.double(0.0) if lf else p.double(b)

@@ -1,0 +1,117 @@
+"""The speed-oriented SQL shapes (benchmarks/README.md) agree exactly with scikit-learn.
+
+References outside the project: scikit-learn's own predict_proba/predict (via
+tree2sql.verify), the datasets scikit-learn bundles (sources named beside each), and
+IEEE 754 doubles as numpy implements them (float32 boundary rows, NaN, infinities).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from engine_rows import cases
+from helpers import assert_agrees, check
+from sklearn.datasets import load_breast_cancer
+from sklearn.ensemble import RandomForestClassifier
+
+from tree2sql.compiler import ScoringRequest, compile_forest
+from tree2sql.dialects import load_profile
+from tree2sql.engines import DuckDBEngine
+from tree2sql.ingest import ingest
+from tree2sql.strategies import text_arrays
+from tree2sql.strategies.text_arrays import TextArrays, node_depths, preorder_positions
+
+SPEED_SHAPES = ("text_arrays",)
+
+
+@pytest.mark.parametrize("strategy", SPEED_SHAPES)
+@pytest.mark.parametrize("name", ["iris", "wine", "breast_cancer_missing", "diabetes"])
+def test_speed_shape_agrees_on_bundled_datasets(strategy: str, name: str) -> None:
+    # Datasets and their sources: see tests/engine_rows.py (Fisher 1936; Forina et al.
+    # 1988; Street, Wolberg & Mangasarian 1993; Efron et al. 2004). Rows include float32
+    # boundary values, NaN and NULL cells, infinities and values beyond float32's range.
+    case = cases()[name]
+    report = check(case.estimator, case.X, strategy=strategy, null_mask=case.null_mask,
+                   forest=case.forest)
+    assert_agrees(report)
+    assert report.null_scores > 0  # the refused edge rows really got NULL scores
+
+
+@pytest.mark.parametrize("top_levels", [0, 1, 3, 64])
+def test_text_arrays_agrees_whatever_the_case_depth(monkeypatch: pytest.MonkeyPatch,
+                                                    top_levels: int) -> None:
+    """All gathers (0), all CASE (64, deeper than any tree) and mixes give the same scores."""
+    # breast cancer Wisconsin (diagnostic): Street, Wolberg & Mangasarian (1993); UCI.
+    case = cases()["breast_cancer_missing"]
+    monkeypatch.setattr(text_arrays.TextArrays.__init__, "__defaults__", (top_levels,))
+    assert TextArrays().top_levels == top_levels
+    assert_agrees(check(case.estimator, case.X, strategy="text_arrays",
+                        null_mask=case.null_mask, forest=case.forest))
+
+
+def test_text_arrays_fully_grown_trees_agree() -> None:
+    """Fully grown trees are far deeper than the CASE levels: most of the walk is gathers."""
+    # breast cancer Wisconsin (diagnostic): Street, Wolberg & Mangasarian (1993); UCI.
+    X, y = load_breast_cancer(return_X_y=True)
+    rng = np.random.default_rng(5)
+    X = X.copy()
+    X[rng.random(X.shape) < 0.05] = np.nan
+    model = RandomForestClassifier(n_estimators=6, random_state=1, n_jobs=1).fit(X, y)
+    forest = ingest(model)
+    assert max(t.depth() for t in forest.trees) > text_arrays.TOP_LEVELS
+    null_mask = np.isnan(X) & (rng.random(X.shape) < 0.5)
+    assert_agrees(check(model, X, strategy="text_arrays", null_mask=null_mask, forest=forest))
+
+
+def test_list_text_cast_round_trips_every_double() -> None:
+    """DuckDB's cast from list text gives back the very doubles numpy wrote (IEEE 754)."""
+    rng = np.random.default_rng(11)
+    values = rng.standard_normal(20_000) * 10.0 ** rng.integers(-300, 300, 20_000)
+    values = np.concatenate([values, [5e-324, 2.2250738585072014e-308, 1.7976931348623157e308,
+                                      -0.0, 0.1, 1 / 3]])
+    profile = load_profile("duckdb")
+    sql = profile.raw["array_from_text"].format(
+        text=profile.string("[" + ",".join(map(repr, values.tolist())) + "]"),
+        element=profile.double_type)
+    engine = DuckDBEngine()
+    try:
+        got = np.array(engine.con.execute(f"SELECT {sql}").fetchone()[0], dtype=np.float64)
+    finally:
+        engine.close()
+    assert got.tobytes() == values.tobytes()
+
+
+def test_missing_sentinels_order_as_the_shape_needs() -> None:
+    """-inf <= every bound and NaN <= no bound, +inf included (DuckDB's NaN ordering)."""
+    p = load_profile("duckdb")
+    nan, inf = p.raw["nan_literal"], p.raw["infinity_literal"]
+    engine = DuckDBEngine()
+    try:
+        row = engine.con.execute(
+            f"SELECT -{inf} <= -{inf}, -{inf} <= -1.7976931348623157e308, "
+            f"{nan} <= {inf}, {nan} <= 1.7976931348623157e308").fetchone()
+    finally:
+        engine.close()
+    assert row == (True, True, False, False)
+
+
+def test_layout_matches_a_plain_preorder_walk() -> None:
+    """The vectorized layout and depths equal the neutral model's own walks."""
+    forest = cases()["wine"].forest
+    for tree in forest.trees:
+        order, position = preorder_positions(tree)
+        assert order.tolist() == tree.preorder()
+        assert np.array_equal(position[order], np.arange(tree.n_nodes))
+        assert int(node_depths(tree).max()) == tree.depth()
+
+
+def test_statement_holds_one_literal_per_array(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The node arrays are string literals, not element lists (what keeps planning short)."""
+    monkeypatch.setattr(text_arrays.TextArrays.__init__, "__defaults__", (2,))
+    case = cases()["iris"]
+    compiled = compile_forest(case.forest, ScoringRequest("t", ("k",), strategy="text_arrays"),
+                              "duckdb")
+    trees = len(case.forest.trees)
+    assert compiled.sql.count("AS INTEGER[])") + compiled.sql.count("AS BIGINT[])") \
+        == 2 * trees
+    assert compiled.sql.count("AS DOUBLE[])") >= trees * (1 + case.forest.n_outputs)

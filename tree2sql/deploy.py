@@ -1,0 +1,289 @@
+"""Deploy compiled SQL in place as a view, table, incremental table or function.
+
+One deploy is one transaction: take the deploy lock (where the engine has one), read the
+manifest, check the source fits the model, drop what the previous active version created,
+create the new object, write the manifest row, verify the live object on a sample and
+record the result. Anything failing, or a disagreement, rolls all of it back: the
+database is as it was and the manifest still tells the truth.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from enum import Enum
+from typing import Any
+
+from tree2sql import __version__
+from tree2sql.compiler import (
+    CompiledQuery,
+    ScoringRequest,
+    compile_forest,
+    feature_columns,
+    text_columns,
+)
+from tree2sql.dialects import Profile, load_profile
+from tree2sql.engines import Engine
+from tree2sql.errors import UserError
+from tree2sql.forest import Forest
+from tree2sql.live_verify import summary, verify_deployment
+from tree2sql.manifest import (
+    Deployment,
+    activate_statements,
+    create_statement,
+    exists,
+    insert_statement,
+    note_statement,
+    now,
+    read,
+    verification_statement,
+)
+from tree2sql.schema import check_source
+from tree2sql.sql_functions import drop_statement, function_statement
+from tree2sql.verify import Report
+
+DEFAULT_DATABASE = "tree2sql.duckdb"  # used when deploy/status/restore get no --url
+DEFAULT_SAMPLE = 1000
+# Advisory lock id shared by every tree2sql deploy into one database (PostgreSQL).
+LOCK_KEY = int.from_bytes(hashlib.sha256(b"tree2sql deploy").digest()[:7], "big")
+
+
+class Form(Enum):
+    VIEW = "view"
+    TABLE = "table"
+    INCREMENTAL = "incremental"
+    FUNCTION = "function"
+
+
+@dataclass(frozen=True)
+class DeployRequest:
+    name: str
+    form: Form
+    scoring: ScoringRequest  # table = the source, keys, column map, prefix, combine
+    sample: int = DEFAULT_SAMPLE
+
+
+@dataclass
+class Plan:
+    """The statements of one deploy, in order, and the manifest row they produce."""
+
+    statements: list[str]
+    deployment: Deployment
+    compiled: CompiledQuery
+    previous: Deployment | None
+    rerun: bool = False  # incremental run of the already active version: no new version
+    added: int | None = None  # rows an incremental deploy inserted
+    notes: list[str] = field(default_factory=list)
+
+
+class Disagreement(Exception):
+    """The live check found disagreements; the deploy was rolled back."""
+
+    def __init__(self, report: Report) -> None:
+        super().__init__(f"{report.disagreements} disagreements")
+        self.report = report
+
+
+def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
+         dialect: str | None = None) -> Plan:
+    """Work out the statements. With no engine (render only) assume nothing is deployed."""
+    profile = load_profile(engine.dialect if engine else dialect or "duckdb")
+    scoring = request.scoring
+    if not scoring.keys:
+        raise UserError("a deploy needs key columns to verify and to score incrementally",
+                        "name them with --key (repeat for a compound key)")
+    features = feature_columns(forest, scoring.columns)
+    history = read(engine, profile, request.name) if engine else []
+    previous = next((d for d in history if d.active), None)
+    statements = []
+    if engine is None or not exists(engine):
+        statements.append(create_statement(profile))
+    if "lock" in profile.ddl:
+        statements.insert(0, profile.ddl["lock"].format(key=LOCK_KEY))
+    if engine is not None:
+        check_source(engine, scoring.table, features, scoring.keys,
+                     text_columns(forest, scoring.columns))
+        if previous is None and request.form is not Form.FUNCTION:
+            _refuse_foreign_object(engine, request.name)
+    creates, compiled = _create_statements(profile, forest, request)
+    deployment = Deployment(
+        name=request.name, version=max((d.version for d in history), default=0) + 1,
+        form=request.form.value, fingerprint=forest.fingerprint(),
+        tree2sql_version=__version__, dialect=profile.name, strategy=compiled.strategy,
+        combine=scoring.combine.value, model=forest.source, source=scoring.table,
+        keys=list(scoring.keys), source_columns=compiled.feature_columns,
+        output_columns=_outputs(request, compiled), statements=creates, created_at=now())
+    if (previous is not None and request.form is Form.INCREMENTAL
+            and previous.form == Form.INCREMENTAL.value and previous.statements == creates):
+        return Plan([*statements, creates[-1],
+                     note_statement(profile, previous.name, previous.version,
+                                    f"incremental run {deployment.created_at}")],
+                    previous, compiled, previous, rerun=True)
+    statements += drop_statements(profile, previous, deployment)
+    statements += creates
+    statements.append(insert_statement(profile, deployment))
+    statements += activate_statements(profile, deployment.name, deployment.version,
+                                      f"deployed {deployment.created_at}")
+    return Plan(statements, deployment, compiled, previous)
+
+
+def _outputs(request: DeployRequest, compiled: CompiledQuery) -> list[str]:
+    if request.form is Form.FUNCTION:
+        return [*request.scoring.keys, *compiled.output_columns]
+    return compiled.output_columns
+
+
+def _header(forest: Forest, request: DeployRequest) -> str:
+    return (f"-- tree2sql {__version__} deploy: {request.form.value} {request.name}\n"
+            f"-- model fingerprint sha256:{forest.fingerprint()}\n")
+
+
+def _create_statements(profile: Profile, forest: Forest,
+                       request: DeployRequest) -> tuple[list[str], CompiledQuery]:
+    """The statements that create the object from nothing (stored for restore)."""
+    name, q = profile.qualified(request.name), profile.quote
+    header = _header(forest, request)
+    if request.form is Form.FUNCTION:
+        statement, compiled = function_statement(profile, forest, request.scoring,
+                                                 request.name)
+        return [header + statement], compiled
+    compiled = compile_forest(forest, request.scoring, profile.name)
+    if request.form is Form.VIEW:
+        return [header + _ddl(profile, "view").format(name=name, query=compiled.sql)], compiled
+    if request.form is Form.TABLE:
+        return [header + _ddl(profile, "table").format(name=name, query=compiled.sql)], \
+            compiled
+    keys = ", ".join(q(k) for k in request.scoring.keys)
+    new, old = q("__t2s_new"), q("__t2s_old")
+    empty = f"SELECT * FROM (\n{compiled.sql}\n) {new} WHERE 1 = 0"
+    index = q(f"{request.name.rpartition('.')[2]}_t2s_keys")
+    columns = ", ".join(q(c) for c in compiled.output_columns)
+    match = " AND ".join(f"{old}.{q(k)} = {new}.{q(k)}" for k in request.scoring.keys)
+    conflict = profile.ddl.get("insert_conflict", "")
+    insert = (f"{header}INSERT INTO {name} ({columns})\nSELECT {columns} FROM (\n"
+              f"{compiled.sql}\n) {new}\n"
+              f"WHERE NOT EXISTS (SELECT 1 FROM {name} {old} WHERE {match})"
+              + (f"\n{conflict}" if conflict else ""))
+    return [header + _ddl(profile, "table").format(name=name, query=empty),
+            f"CREATE UNIQUE INDEX {index} ON {name} ({keys})", insert], compiled
+
+
+def _ddl(profile: Profile, form: str) -> str:
+    if form not in profile.ddl:
+        raise UserError(f"the {profile.name} profile has no {form} template",
+                        "add one under [ddl] in its dialects/*.toml file")
+    return profile.ddl[form]
+
+
+def drop_statements(profile: Profile, previous: Deployment | None,
+                    new: Deployment) -> list[str]:
+    """Remove what the active version created, unless the new one replaces it in place."""
+    if previous is None:
+        return []
+    name = profile.qualified(previous.name)
+    if previous.form == Form.FUNCTION.value:
+        return [drop_statement(profile, previous.name, len(previous.source_columns))]
+    if previous.form == Form.VIEW.value:
+        in_place = (new.form == Form.VIEW.value and profile.ddl.get("replace_view", False)
+                    and new.output_columns == previous.output_columns)
+        return [] if in_place else [f"DROP VIEW {name}"]
+    return [f"DROP TABLE {name}"]  # its unique index goes with it
+
+
+def _refuse_foreign_object(engine: Engine, name: str) -> None:
+    """Never replace a table or view that tree2sql did not create."""
+    if not engine.has_table(name):
+        return
+    raise UserError(f"{name!r} already exists and was not deployed by tree2sql",
+                    "choose another --name, or drop or rename the existing object")
+
+
+def deploy(engine: Engine, estimator: Any, forest: Forest, request: DeployRequest,
+           progress: Callable[[int], None] | None = None) -> tuple[Plan, Report | None]:
+    """Run a deploy in one transaction, verified live before it commits."""
+    with engine.transaction():
+        profile = load_profile(engine.dialect)
+        if "lock" in profile.ddl:  # take turns before reading the manifest
+            engine.execute(profile.ddl["lock"].format(key=LOCK_KEY))
+        result = plan(engine, forest, request)
+        before = _count(engine, profile, request.name) if result.rerun else 0
+        try:
+            for statement in result.statements:
+                if "lock" not in profile.ddl or statement != result.statements[0]:
+                    engine.execute(statement)  # the lock is held already
+        except _database_errors() as exc:
+            raise UserError(f"the database refused the deploy, so nothing was changed: "
+                            f"{str(exc).splitlines()[0]}",
+                            "fix the cause (see tree2sql deploy --dry-run for the "
+                            "statements) and deploy again") from exc
+        if request.form is Form.INCREMENTAL:
+            result.added = _count(engine, profile, request.name) - before
+        target = result.deployment
+        report = None
+        if request.sample:
+            report = verify_deployment(estimator, forest, engine, target, request.sample,
+                                       progress)
+            engine.execute(verification_statement(profile, target.name, target.version,
+                                                  summary(report, request.sample), now()))
+        if report is not None and not report.agrees:
+            raise Disagreement(report)
+    return result, report
+
+
+def _count(engine: Engine, profile: Profile, name: str) -> int:
+    return int(engine.query(f"SELECT COUNT(*) AS n FROM {profile.qualified(name)}")["n"][0])
+
+
+def _database_errors() -> tuple[type[BaseException], ...]:
+    """Errors raised by the database itself (as opposed to bugs in tree2sql)."""
+    import duckdb
+    import sqlalchemy as sa
+
+    return (duckdb.Error, sa.exc.DBAPIError)
+
+
+def restore(engine: Engine, name: str, version: int | None = None) -> tuple[Deployment,
+                                                                              Deployment]:
+    """Bring back the version before the active one (or `version`): (restored, replaced)."""
+    profile = load_profile(engine.dialect)
+    with engine.transaction():
+        if "lock" in profile.ddl:
+            engine.execute(profile.ddl["lock"].format(key=LOCK_KEY))
+        history = read(engine, profile, name)
+        current = next((d for d in history if d.active), None)
+        if current is None:
+            raise UserError(f"nothing named {name!r} is deployed here",
+                            "list deployments with tree2sql status")
+        earlier = [d for d in history if d.version < current.version]
+        wanted = ([d for d in history if d.version == version] if version is not None
+                  else earlier[-1:])
+        if not wanted or wanted[0].version == current.version:
+            raise UserError(f"{name!r} has no earlier version to restore "
+                            f"(active: version {current.version})",
+                            "deploy the model you want instead")
+        target = wanted[0]
+        if target.dialect != profile.name:
+            raise UserError(f"version {target.version} was written for {target.dialect}",
+                            "restore it into a database of that dialect")
+        statements = [*drop_statements(profile, current, target), *target.statements,
+                      *activate_statements(profile, name, target.version,
+                                           f"restored {now()} in place of version "
+                                           f"{current.version}")]
+        try:
+            for statement in statements:
+                engine.execute(statement)
+        except _database_errors() as exc:
+            raise UserError(f"the database refused the restore, so nothing was changed: "
+                            f"{str(exc).splitlines()[0]}",
+                            "fix the cause (e.g. a changed source table) and restore again") \
+                from exc
+    return target, current
+
+
+def record_check(engine: Engine, deployment: Deployment, report: Report,
+                 rows: int | None) -> None:
+    """Write a later live check of a deployment into its manifest row."""
+    profile = load_profile(engine.dialect)
+    engine.execute(verification_statement(profile, deployment.name, deployment.version,
+                                          summary(report, rows), now()))

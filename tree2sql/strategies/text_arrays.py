@@ -1,0 +1,249 @@
+"""Trees walked one level per CTE stage over per-tree node arrays parsed from text.
+
+Why this shape (figures in benchmarks/README.md):
+
+* A list literal costs DuckDB far more to plan than to run, since every element is an
+  expression for the parser, binder and optimizer. Here every node array is ONE string
+  literal cast to a list, so the planner folds one constant per array.
+* The arrays are per tree: a gather from a constant list copies that list once per vector,
+  so one array for the whole forest is slow, and small ones are cheap.
+* They come in through one cross join with a one-row model relation and are carried from
+  stage to stage as columns (a cross join per stage costs planning time per stage).
+* Optionally the top `top_levels` levels are a small nested CASE in the first stage, saving
+  that many stages. Measured on DuckDB this loses (a nested CASE is slow to plan), so the
+  default is 0: every level is one CTE stage of gathers.
+
+Each row carries its features twice in one array, with missing values replaced by a value
+that decides the split by itself, then one always-undecided slot:
+
+    xs = [x1 .. xk with NULL -> -inf,  x1 .. xk with NULL -> NaN,  NaN]
+
+A node's `slot` picks the copy that matches its missing direction: -inf <= any bound sends
+a missing value left; NaN <= any bound is false (DuckDB orders NaN above every value,
++inf included), sending it right. A leaf reads the last slot and has itself as right child,
+so a tree that reached a leaf stays there while deeper trees go on. Node ids are 1-based
+positions root first (pre-order), so a left child is the next id:
+
+    n = CASE WHEN xs[slot[n]] <= bound[n] THEN n + 1 ELSE right[n] END
+
+Profile keys: `array_from_text` over {text} (a quoted string literal) and {element},
+`array_literal` over {items}, `array_index` over {array} and {index}, `integer_type`,
+`nan_literal` and `infinity_literal`.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from tree2sql.dialects import Profile
+from tree2sql.errors import UserError
+from tree2sql.forest import LEAF, Forest, Tree
+from tree2sql.strategies.base import Context, LeafValue, Needs, Strategy
+from tree2sql.strategies.nested_case import ALWAYS_LEFT, ALWAYS_RIGHT, split_conditions
+
+TOP_LEVELS = 0  # levels rendered as nested CASE; measured choice, see benchmarks/README.md
+QUOTE_MARK = "0x0"  # stands for a tree number inside a quoted template name
+REQUIRED_KEYS = ("array_from_text", "array_literal", "array_index", "integer_type",
+                 "nan_literal", "infinity_literal")
+
+
+def preorder_positions(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
+    """(order, position): order[i] is the node at position i (root first, left subtree
+    before right); position inverts it. scikit-learn already numbers trees this way, which
+    is recognised without a per-node walk."""
+    internal = np.flatnonzero(tree.left != LEAF)
+    if np.array_equal(tree.left[internal], internal + 1) and _right_follows_left(tree):
+        identity = np.arange(tree.n_nodes, dtype=np.int64)
+        return identity, identity
+    order = np.array(tree.preorder(), dtype=np.int64)
+    position = np.empty_like(order)
+    position[order] = np.arange(tree.n_nodes)
+    return order, position
+
+
+def _right_follows_left(tree: Tree) -> bool:
+    """Each right child comes right after its left sibling's subtree."""
+    internal = np.flatnonzero(tree.left != LEAF)
+    if not (np.all(tree.left[internal] > internal) and np.all(tree.right[internal] > internal)):
+        return False
+    size = np.ones(tree.n_nodes, dtype=np.int64)
+    depth = node_depths(tree)
+    for level in range(int(depth.max()), -1, -1):  # children first, one numpy step per level
+        nodes = internal[depth[internal] == level]
+        size[nodes] = 1 + size[tree.left[nodes]] + size[tree.right[nodes]]
+    return bool(np.array_equal(tree.right[internal], internal + 1 + size[internal + 1]))
+
+
+def node_depths(tree: Tree) -> np.ndarray:
+    """Depth of every node, one numpy step per level (no per-node Python loop)."""
+    depth = np.zeros(tree.n_nodes, dtype=np.int64)
+    frontier = np.array([0], dtype=np.int64)
+    level = 0
+    while len(frontier):
+        depth[frontier] = level
+        inner = frontier[tree.left[frontier] != LEAF]
+        frontier = np.concatenate([tree.left[inner], tree.right[inner]])
+        level += 1
+    return depth
+
+
+def _text(values: list) -> str:
+    return "[" + ",".join(map(repr, values)) + "]"
+
+
+class TextArrays(Strategy):
+    name = "text_arrays"
+    summary = ("per-tree node arrays parsed from text, one CTE stage per level "
+               "(vectorized engines)")
+
+    def __init__(self, top_levels: int = TOP_LEVELS) -> None:
+        self.top_levels = top_levels
+        self._layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        self._quoted: dict[tuple[str, str], str] = {}
+
+    def _layout(self, forest: Forest, t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(order, position, depth by node id) of tree t, computed once."""
+        if t not in self._layouts:
+            tree = forest.trees[t]
+            self._layouts[t] = (*preorder_positions(tree), node_depths(tree))
+        return self._layouts[t]
+
+    def depth(self, forest: Forest) -> int:
+        return max(int(self._layout(forest, t)[2].max()) for t in range(len(forest.trees)))
+
+    def _walked_levels(self, forest: Forest) -> int:
+        return max(0, self.depth(forest) - self.top_levels)
+
+    # -- SQL pieces -----------------------------------------------------------------------
+
+    def _check(self, profile: Profile) -> None:
+        missing = [k for k in REQUIRED_KEYS if k not in profile.raw]
+        if missing:
+            raise UserError(f"the {profile.name} profile has no {', '.join(missing)} "
+                            f"for the {self.name} shape",
+                            "use another --strategy, or add the keys to the dialect profile")
+
+    def _array(self, ctx: Context, values: list, element: str) -> str:
+        return ctx.profile.raw["array_from_text"].format(
+            text=ctx.profile.string(_text(values)), element=element)
+
+    def _index(self, ctx: Context, array: str, index: str) -> str:
+        return ctx.profile.raw["array_index"].format(array=array, index=index)
+
+    def _name(self, ctx: Context, what: str, t: int) -> str:
+        """Quoted internal name; quoting through sqlglot once per kind keeps compiling fast
+        (the names are plain ASCII, so the quoted template only needs its number)."""
+        key = (ctx.profile.name, what)
+        if key not in self._quoted:
+            self._quoted[key] = ctx.prefix(f"{what}{QUOTE_MARK}")
+        return self._quoted[key].replace(QUOTE_MARK, str(t))
+
+    def stages(self, ctx: Context) -> list[tuple[str, str]]:
+        self._check(ctx.profile)
+        forest, p = ctx.forest, ctx.profile
+        walked = self._walked_levels(forest)
+        k = len(ctx.features)
+        xs = ctx.prefix("xs")
+        start = [f"{self._start(ctx, t)} AS {self._name(ctx, 'n', t)}"
+                 for t in range(len(forest.trees))]
+        if walked == 0:  # every tree fits in its CASE: no arrays needed
+            return [(ctx.prefix("walk0"),
+                     "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *start])
+                     + f"\nFROM {ctx.source}")]
+        model_columns, carried = [], []
+        integer, double = p.raw["integer_type"], p.double_type
+        for t, tree in enumerate(forest.trees):
+            order, position, _ = self._layout(forest, t)
+            leaf = tree.left[order] == LEAF
+            own = np.arange(1, len(order) + 1)
+            goes_left = tree.missing_left[order] & forest.accepts_missing
+            columns = {
+                "slot": (np.where(leaf, 2 * k + 1,
+                                  tree.feature[order] + 1 + np.where(goes_left, 0, k)), integer),
+                "bound": (np.where(leaf, 0.0, ctx.bounds[t][order]), double),
+                "right": (np.where(leaf, own,
+                                   position[np.where(leaf, 0, tree.right[order])] + 1), integer),
+            }
+            for what, (values, element) in columns.items():
+                name = self._name(ctx, what, t)
+                model_columns.append(f"{self._array(ctx, values.tolist(), element)} AS {name}")
+                carried.append(name)
+        model = ctx.prefix("model")
+        low, nan = f"-{p.raw['infinity_literal']}", p.raw["nan_literal"]
+        row = ([f"COALESCE({x}, {low})" for x in ctx.features]
+               + [f"COALESCE({x}, {nan})" for x in ctx.features] + [nan])
+        row_array = p.raw["array_literal"].format(items=", ".join(row))
+        stages = [
+            (model, "SELECT " + ",\n  ".join(model_columns)),
+            (ctx.prefix("walk0"),
+             "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, f"{row_array} AS {xs}", *carried,
+                                       *start])
+             + f"\nFROM {ctx.source} CROSS JOIN {model}"),
+        ]
+        keep = [*ctx.keys, ctx.ok, xs, *carried]
+        for level in range(1, walked + 1):
+            steps = [self._step(ctx, t) for t in range(len(forest.trees))]
+            stages.append((ctx.prefix(f"walk{level}"),
+                           "SELECT " + ",\n  ".join([*keep, *steps])
+                           + f"\nFROM {stages[-1][0]}"))
+        return stages
+
+    def _step(self, ctx: Context, t: int) -> str:
+        n = self._name(ctx, "n", t)
+        value = self._index(ctx, ctx.prefix("xs"), self._index(ctx, self._name(ctx, "slot", t), n))
+        bound = self._index(ctx, self._name(ctx, "bound", t), n)
+        right = self._index(ctx, self._name(ctx, "right", t), n)
+        return f"CASE WHEN {value} <= {bound} THEN {n} + 1 ELSE {right} END AS {n}"
+
+    def _start(self, ctx: Context, t: int) -> str:
+        """Position (1-based) of the node tree t reaches after its top levels: a nested CASE."""
+        tree = ctx.forest.trees[t]
+        _, position, depth = self._layout(ctx.forest, t)
+        top = np.flatnonzero((depth < self.top_levels) & (tree.left != LEAF))
+        conditions = split_conditions(ctx, t, top.tolist())
+        left, right = tree.left, tree.right
+        out: list[str] = []
+        stack: list[int | str] = [0]
+        while stack:
+            item = stack.pop()
+            if isinstance(item, str):
+                out.append(item)
+                continue
+            if left[item] == LEAF or depth[item] >= self.top_levels:
+                out.append(str(int(position[item]) + 1))
+                continue
+            condition = conditions[item]
+            if condition == ALWAYS_LEFT:
+                stack.append(int(left[item]))
+            elif condition == ALWAYS_RIGHT:
+                stack.append(int(right[item]))
+            else:
+                out.append(f"CASE WHEN {condition} THEN ")
+                stack.extend((" END", int(right[item]), " ELSE ", int(left[item])))
+        return "".join(out)
+
+    def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
+        order, _, _ = self._layout(ctx.forest, tree_index)
+        tree = ctx.forest.trees[tree_index]
+        is_leaf = (tree.left[order] == LEAF).tolist()
+        items = [leaf_value(node) if leaf else "0"
+                 for node, leaf in zip(order.tolist(), is_leaf, strict=True)]
+        n = self._name(ctx, "n", tree_index)
+        try:
+            values = [float(item) for item in items]
+        except ValueError:  # not plain numbers: keep the literals as SQL
+            return self._index(ctx, ctx.profile.raw["array_literal"].format(
+                items=", ".join(items)), n)
+        if not all(map(math.isfinite, values)):
+            raise UserError("a leaf value is not finite", "check the model's leaf values")
+        return self._index(ctx, self._array(ctx, values, ctx.profile.double_type), n)
+
+    def needs(self, forest: Forest, profile: Profile) -> Needs:
+        self._check(profile)
+        size = 45 * forest.n_nodes * (3 + max(1, forest.n_outputs)) \
+            + 150 * len(forest.trees) * (self._walked_levels(forest) + 2 ** self.top_levels)
+        levels = min(self.top_levels, self.depth(forest))
+        return Needs(size, case_depth=levels + 1, expression_depth=2 * levels + 8,
+                     select_columns=4 * len(forest.trees) + forest.n_features + 4)
