@@ -219,7 +219,7 @@ class ClickHouseBackend(Backend):
         frame.insert(0, "id", ids)
         path = Path(self.dir.name) / "scores.parquet"
         frame.to_parquet(path)
-        self.execute(f"CREATE TABLE {ROUNDTRIP} ENGINE = MergeTree ORDER BY id AS "
+        self.execute(f"CREATE TABLE {ROUNDTRIP} ENGINE = MergeTree ORDER BY tuple() AS "
                      f"SELECT * FROM file('{path}', Parquet)")
 
     def close(self):

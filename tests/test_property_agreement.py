@@ -23,7 +23,7 @@ from __future__ import annotations
 import math
 import os
 from collections import Counter
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -47,13 +47,19 @@ from tree2sql.compiler import ScoringRequest
 from tree2sql.dialects import load_profile
 from tree2sql.engines import Engine, connect
 from tree2sql.exact import FLOAT32_MAX, FLOAT32_OVERFLOW
-from tree2sql.forest import LEAF, Forest
+from tree2sql.forest import LEAF, Comparison, Forest
 from tree2sql.ingest import ingest
 from tree2sql.verify import Report, verify
+
+# scikit-learn's finiteness check sums each batch, which overflows on the extreme rows.
+pytestmark = pytest.mark.filterwarnings(
+    "ignore:invalid value encountered in reduce:RuntimeWarning",
+    "ignore:overflow encountered in reduce:RuntimeWarning")
 
 TARGET_EVALUATIONS = 10**7  # row x tree evaluations per run (issue 8)
 EVALUATIONS: Counter[str] = Counter()  # engine/strategy -> verified row x tree evaluations
 EXAMPLES: Counter[str] = Counter()
+PROBES: Counter[str] = Counter()  # cells a plain double comparison would send the wrong way
 
 F32 = np.float32
 SPECIAL_VALUES = np.array([
@@ -77,6 +83,7 @@ class Shape:
     extra: bool  # extra-trees instead of a random forest (forests only)
     trees: int
     depth: int | None
+    leaves: int  # max_leaf_nodes: bounds the statement size, which engines plan slowly
     features: int
     classes: int
     labels: str  # int, str or bool
@@ -98,6 +105,7 @@ def shapes(draw: Any, max_trees: int) -> Shape:
         trees=draw(st.integers(1, max_trees if forest else max(1, max_trees // 4))),
         depth=draw(st.one_of(st.none(), st.integers(1, 14))) if forest else
         draw(st.integers(1, 5)),
+        leaves=draw(st.integers(2, 48)),
         features=draw(st.integers(1, 8)),
         classes=classes,
         labels=labels,
@@ -149,7 +157,7 @@ def _fit(shape: Shape) -> tuple[Any, np.ndarray]:
         cls = {(False, True): RandomForestClassifier, (True, True): ExtraTreesClassifier,
                (False, False): RandomForestRegressor, (True, False): ExtraTreesRegressor}[
             (shape.extra, shape.family.endswith("classifier"))]
-        model = cls(n_jobs=1, min_samples_leaf=int(rng.integers(1, 4)),
+        model = cls(n_jobs=1, max_leaf_nodes=shape.leaves, min_samples_leaf=int(rng.integers(1, 4)),
                     bootstrap=bool(rng.integers(2)), **common)
     return model.fit(X, y), X
 
@@ -198,9 +206,24 @@ def scoring_rows(forest: Forest, train: np.ndarray, n: int, seed: int,
     return X, np.isnan(X) & (rng.random(X.shape) < 0.5)
 
 
-def rows_for(trees: int, budget: int) -> int:
+def naive_misroutes(forest: Forest, X: np.ndarray) -> int:
+    """Cells x for which `x <= t` in doubles and `float32(x) <= t` differ for some split
+    threshold t on x's feature: where SQL without the float32 rule would go wrong."""
+    count = 0
+    for f in range(X.shape[1]):
+        t = np.unique(np.concatenate([tree.threshold[(tree.left != LEAF) & (tree.feature == f)]
+                                      for tree in forest.trees]))
+        t = t[np.isfinite(t)]
+        x = X[:, f]
+        x = x[np.isfinite(x) & (np.abs(x) < FLOAT32_OVERFLOW)]
+        as_float32 = x.astype(F32).astype(np.float64)
+        count += int(np.sum(np.searchsorted(t, x) != np.searchsorted(t, as_float32)))
+    return count
+
+
+def rows_for(trees: int, budget: int, cap: int) -> int:
     """Rows per example so that rows x trees stays near the example's budget."""
-    return int(min(60_000, max(2_000, budget // trees)))
+    return int(min(cap, max(2_000, budget // trees)))
 
 
 class Bench:
@@ -225,12 +248,15 @@ class Bench:
                                                     name=self.profile.quote(table)))
 
 
-def check_shape(bench: Bench, shape: Shape, budget: int) -> None:
+def check_shape(bench: Bench, shape: Shape, budget: int, cap: int) -> None:
     model, train = _fit(shape)
     forest = ingest(model)
-    n = rows_for(len(forest.trees), budget)
+    n = rows_for(len(forest.trees), budget, cap)
     X, nulls = scoring_rows(forest, train, n, shape.seed,
                             infinities=bench.profile.infinity_literal is not None)
+    probes = naive_misroutes(forest, X)
+    if any(np.isfinite(tree.threshold[tree.left != LEAF]).any() for tree in forest.trees):
+        assert probes > 0  # the rows do probe the float32 rule
     table = bench.load(X, forest.feature_names, nulls)
     try:
         for strategy in bench.strategies:
@@ -239,6 +265,7 @@ def check_shape(bench: Bench, shape: Shape, budget: int) -> None:
             assert_exact(report, n, forest, X)
             EVALUATIONS[f"{bench.name}/{strategy}"] += report.rows * len(forest.trees)
             EXAMPLES[f"{bench.name}/{strategy}"] += 1
+            PROBES[f"{bench.name}/{strategy}"] += probes
     finally:
         bench.drop(table)
 
@@ -285,22 +312,22 @@ def postgres_bench(pg_url):
     engine.close()
 
 
-@given(shape=shapes(max_trees=200))
+@given(shape=shapes(max_trees=80))
 @_settings(examples=10)
 def test_duckdb_agrees_on_random_forests(duckdb_bench, shape):
-    check_shape(duckdb_bench, shape, budget=700_000)
+    check_shape(duckdb_bench, shape, budget=1_200_000, cap=100_000)
 
 
-@given(shape=shapes(max_trees=60))
+@given(shape=shapes(max_trees=40))
 @_settings(examples=6)
 def test_sqlite_agrees_on_random_forests(sqlite_bench, shape):
-    check_shape(sqlite_bench, shape, budget=400_000)
+    check_shape(sqlite_bench, shape, budget=400_000, cap=20_000)
 
 
-@given(shape=shapes(max_trees=60))
+@given(shape=shapes(max_trees=40))
 @_settings(examples=6)
 def test_postgres_agrees_on_random_forests(postgres_bench, shape):
-    check_shape(postgres_bench, shape, budget=400_000)
+    check_shape(postgres_bench, shape, budget=400_000, cap=20_000)
 
 
 def test_adversarial_values_are_what_they_claim():
@@ -312,13 +339,35 @@ def test_adversarial_values_are_what_they_claim():
     assert math.copysign(1.0, -0.0) < 0 and 5e-324 > 0 and 5e-324 / 2 == 0
 
 
+def test_the_check_catches_a_plain_double_comparison(duckdb_bench):
+    """The same rows, compiled as if the model compared in doubles: verify must object."""
+    shape = Shape("forest_classifier", extra=False, trees=20, depth=None, leaves=40,
+                  features=4, classes=3, labels="str", train_missing=True, monotonic=False,
+                  seed=7)
+    model, train = _fit(shape)
+    forest = ingest(model)
+    X, nulls = scoring_rows(forest, train, 20_000, shape.seed, infinities=True)
+    table = duckdb_bench.load(X, forest.feature_names, nulls)
+    try:
+        plain = replace(forest, comparison=Comparison.FLOAT64_LE)
+        for strategy in duckdb_bench.strategies:
+            request = ScoringRequest(table=table, keys=(KEY,), strategy=strategy)
+            assert verify(model, forest, duckdb_bench.engine, request).disagreements == 0
+            report = verify(model, plain, duckdb_bench.engine, request)
+            assert report.disagreements > 0, report.to_text()
+            assert report.examples and report.examples[0]["tree"] is not None
+    finally:
+        duckdb_bench.drop(table)
+
+
 def test_row_tree_evaluations_reach_target(capsys):
     """Runs last in this file: the total of verified row x tree evaluations."""
     total = sum(EVALUATIONS.values())
     with capsys.disabled():
         print(f"\nproperty agreement: {total:,} row x tree evaluations verified, "
               f"0 disagreements; per engine/strategy (examples): "
-              + ", ".join(f"{k} {v:,} ({EXAMPLES[k]})" for k, v in sorted(EVALUATIONS.items())))
-    if not EVALUATIONS:
-        pytest.skip("the property tests did not run in this session")
+              + ", ".join(f"{k} {v:,} ({EXAMPLES[k]}, {PROBES[k]:,} float32-rule probes)"
+                          for k, v in sorted(EVALUATIONS.items())))
+    if "duckdb/nested_case" not in EVALUATIONS:
+        pytest.skip("the DuckDB property test, which carries most of the count, did not run")
     assert total >= TARGET_EVALUATIONS

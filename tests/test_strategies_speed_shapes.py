@@ -11,8 +11,12 @@ import numpy as np
 import pytest
 from engine_rows import cases
 from helpers import assert_agrees, check
-from sklearn.datasets import load_breast_cancer
-from sklearn.ensemble import RandomForestClassifier
+from sklearn.datasets import load_breast_cancer, load_iris
+from sklearn.ensemble import (
+    GradientBoostingClassifier,
+    HistGradientBoostingClassifier,
+    RandomForestClassifier,
+)
 
 from tree2sql.compiler import ScoringRequest, compile_forest
 from tree2sql.dialects import load_profile
@@ -115,3 +119,15 @@ def test_statement_holds_one_literal_per_array(monkeypatch: pytest.MonkeyPatch) 
     assert compiled.sql.count("AS INTEGER[])") + compiled.sql.count("AS BIGINT[])") \
         == 2 * trees
     assert compiled.sql.count("AS DOUBLE[])") >= trees * (1 + case.forest.n_outputs)
+
+
+@pytest.mark.parametrize("make", [
+    lambda: GradientBoostingClassifier(n_estimators=10, max_depth=3, random_state=0),
+    lambda: HistGradientBoostingClassifier(max_iter=10, random_state=0),
+])
+def test_text_arrays_agrees_on_boosted_trees(make) -> None:
+    """Summed trees with a link function go through the same leaf-finding shape."""
+    # iris: R. A. Fisher (1936), Annals of Eugenics 7(2); UCI ML repository.
+    X, y = load_iris(return_X_y=True)
+    model = make().fit(X, y)
+    assert_agrees(check(model, X, strategy="text_arrays"))

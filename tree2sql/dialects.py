@@ -40,14 +40,15 @@ class Profile:
 
     def quote(self, name: str) -> str:
         """An identifier, always quoted, escaped for this dialect."""
-        return exp.to_identifier(str(name), quoted=True).sql(dialect=self.sqlglot_dialect)
+        return exp.to_identifier(_no_nul(str(name)), quoted=True).sql(
+            dialect=self.sqlglot_dialect)
 
     def qualified(self, dotted: str) -> str:
         """A possibly schema-qualified table name, each part quoted (split on dots)."""
         return ".".join(self.quote(part) for part in dotted.split("."))
 
     def string(self, text: str) -> str:
-        return exp.Literal.string(str(text)).sql(dialect=self.sqlglot_dialect)
+        return exp.Literal.string(_no_nul(str(text))).sql(dialect=self.sqlglot_dialect)
 
     def double(self, value: float) -> str:
         """A double literal; `literal_style` in the profile picks how (see tree2sql.exact)."""
@@ -82,6 +83,16 @@ class Profile:
             raise UserError(f"the {self.name} profile has no {kind!r} statement form",
                             f"add `{kind}` under [ddl] in dialects/{self.name}.toml")
         return template.format(**parts)
+
+
+def _no_nul(text: str) -> str:
+    """NUL cannot travel in SQL text: SQLite's driver refuses it and PostgreSQL's protocol
+    ends the statement there, cutting a quoted name open."""
+    if "\x00" in text:
+        raise UserError(f"the name or label {text!r} contains a NUL character, which SQL "
+                        "statements cannot carry",
+                        "rename the feature, class label or column without NUL characters")
+    return text
 
 
 def available() -> list[str]:

@@ -15,6 +15,7 @@ from tree2sql.errors import UserError
 
 LOCAL_SETTINGS = {
     "spark.ui.enabled": "false",  # no web UI for a scoring or test session
+    "spark.ui.showConsoleProgress": "false",  # stderr is for tree2sql's own messages
     "spark.sql.shuffle.partitions": "4",  # small data in local mode: few shuffle tasks
     "spark.driver.memory": "2g",
 }

@@ -6,7 +6,6 @@ can run arbitrary code while loading, so they load only when the user says so.
 
 from __future__ import annotations
 
-import pickle
 import zipfile
 from pathlib import Path
 from typing import Any
@@ -87,7 +86,6 @@ def _load_pickle(path: Path) -> Any:
 
     try:
         return joblib.load(path)
-    except (pickle.UnpicklingError, EOFError, ValueError, KeyError, IndexError,
-            AttributeError, ModuleNotFoundError, TypeError) as exc:
+    except Exception as exc:  # unpickling can raise anything (zlib.error, MemoryError, ...)
         raise UserError(f"cannot load {str(path)!r} as pickle/joblib: {exc}",
                         "check that the file is a complete model file") from exc

@@ -76,7 +76,7 @@ def check_reason_columns(estimator: Any, forest: Forest, X: np.ndarray,
     position = {forest.feature_names[f]: i for i, f in enumerate(used)}
     keep = np.flatnonzero(~expected_null)
     sql_null = np.array([[v is None for v in row] for row in names.tolist()], dtype=bool) \
-        | np.isnan(credits)
+        & np.isnan(credits)
     verdict.disagreements += int((~sql_null[expected_null].all(axis=1)).sum())
     reference = reference_credits(estimator, forest, X[keep])[:, used, :]
     if reference.shape[2] > 1:  # multiclass: the predicted class's credits

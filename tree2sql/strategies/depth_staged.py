@@ -150,6 +150,8 @@ class DepthStaged(Strategy):
         lookup = leaves * (20 + literal_bytes(profile)) * forest.n_outputs
         carried = (forest.n_features + len(forest.trees)) * 24 * stages
         return Needs(walk + lookup + carried + 4000,
-                     case_depth=min(k, deepest) + 1,
+                     # stages nest k + 1 deep; the planner adds the one level that the
+                     # compiler's CASE around the sum costs, which stages do not pay
+                     case_depth=max(1, min(k, deepest)),
                      expression_depth=EXPRESSION_DEPTH_PER_LEVEL * min(k, deepest) + 6,
                      select_columns=forest.n_features + len(forest.trees) + 4)

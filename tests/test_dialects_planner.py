@@ -1,0 +1,154 @@
+"""The planner switches shape as a model crosses each limit a profile states.
+
+Each test builds models just inside and just past one limit and checks the planner's
+choice, that the reason names the limit, and (where the engine runs here) that the chosen
+SQL runs and agrees while the naive shape really fails.
+"""
+
+from __future__ import annotations
+
+import functools
+import sqlite3
+from dataclasses import replace
+
+import numpy as np
+import pytest
+import sqlglot
+from engine_rows import KEY, load_rows
+from sklearn.ensemble import RandomForestClassifier
+from sklearn.tree import DecisionTreeRegressor
+from test_dialects_golden import case_nesting
+
+from tree2sql.compiler import ScoringRequest, compile_forest
+from tree2sql.dialects import load_profile
+from tree2sql.engines import connect
+from tree2sql.errors import UserError
+from tree2sql.ingest import ingest
+from tree2sql.strategies import Needs, choose, limit_problem
+from tree2sql.verify import verify
+
+
+@functools.cache
+def forest_of_depth(depth: int, trees: int = 3, rows: int = 4000):
+    """Random forest on synthetic data (fixed seed) whose deepest tree is exactly `depth`."""
+    rng = np.random.default_rng(depth)
+    X = rng.normal(size=(rows, 8))
+    y = (np.sin(3 * X[:, 0]) + X[:, 1] * X[:, 2] + rng.normal(size=rows) > 0).astype(int)
+    model = RandomForestClassifier(n_estimators=trees, max_depth=depth, random_state=0,
+                                   n_jobs=1).fit(X, y)
+    forest = ingest(model)
+    assert max(t.depth() for t in forest.trees) == depth
+    return model, forest, X
+
+
+@pytest.mark.parametrize(("dialect", "fits", "crosses"), [("tsql", 9, 10), ("sqlite", 13, 14)])
+def test_case_depth_limit(dialect, fits, crosses):
+    profile = load_profile(dialect)
+    limit = profile.limit("case_depth")
+    strategy, _ = choose(forest_of_depth(fits)[1], profile)
+    assert strategy.name == "nested_case"
+    strategy, reason = choose(forest_of_depth(crosses)[1], profile)
+    assert strategy.name == "depth_staged"
+    assert "case_depth" in reason and str(limit) in reason
+    for depth in (fits, crosses):
+        sql = compile_forest(forest_of_depth(depth)[1], ScoringRequest(table="t", keys=("k",)),
+                             dialect).sql
+        assert case_nesting(sqlglot.parse_one(sql, read=dialect)) <= limit
+
+
+def test_sqlite_parser_limit_is_real_and_avoided(tmp_path):
+    """Nested CASE for depth-20 trees overflows SQLite's parser; the planner's shape runs."""
+    model, forest, X = forest_of_depth(20, trees=2)
+    engine = connect(f"sqlite:///{tmp_path / 'deep.db'}")
+    load_rows(engine, load_profile("sqlite"), "t", X[:300], forest.feature_names)
+    naive = compile_forest(forest, ScoringRequest(table="t", keys=(KEY,),
+                                                  strategy="nested_case"), "sqlite")
+    with pytest.raises(Exception, match="parser stack overflow"):
+        sqlite3.connect(tmp_path / "deep.db").execute(naive.sql).fetchall()
+    report = verify(model, forest, engine, ScoringRequest(table="t", keys=(KEY,)))
+    assert report.strategy == "depth_staged"
+    assert report.disagreements == 0 and report.max_abs_diff <= 1e-12, report.to_text()
+    engine.close()
+
+
+def test_statement_bytes_limit_snowflake():
+    """Snowflake's 1 MB: a small forest inlines; a large one moves into a model table."""
+    profile = load_profile("snowflake")
+    small = forest_of_depth(6)[1]
+    assert choose(small, profile)[0].name == "nested_case"
+    _, large, _ = forest_of_depth(10, trees=60)
+    strategy, reason = choose(large, profile)
+    assert strategy.name == "model_table"
+    assert "statement_bytes" in reason
+    compiled = compile_forest(large, ScoringRequest(table="t", keys=("k",)), "snowflake")
+    assert compiled.strategy == "model_table"
+    sizes = [len(s.encode()) for s in [*compiled.setup, compiled.sql]]
+    assert max(sizes) <= profile.limit("statement_bytes")
+    inline = compile_forest(large, ScoringRequest(table="t", keys=("k",),
+                                                  strategy="nested_case"), "snowflake")
+    assert len(inline.sql.encode()) > profile.limit("statement_bytes")  # the limit was real
+
+
+def test_statement_bytes_limit_clickhouse_refuses_rather_than_emits():
+    """ClickHouse's 256 KiB with no model-table shape there: a clear error, not bad SQL."""
+    profile = load_profile("clickhouse")
+    assert choose(forest_of_depth(6)[1], profile)[0].name == "nested_case"
+    with pytest.raises(UserError, match="statement_bytes"):
+        choose(forest_of_depth(10, trees=60)[1], profile)
+
+
+def test_expression_depth_limit_duckdb():
+    """A chain-shaped regression tree ~600 deep: too deep to nest, so depth_staged."""
+    X = np.arange(600, dtype=float)[:, None]
+    y = 2.0 ** np.arange(600)  # each split peels off the largest value: a chain
+    model = DecisionTreeRegressor(random_state=0).fit(X, y)
+    forest = ingest(model)
+    assert max(t.depth() for t in forest.trees) > 500
+    strategy, reason = choose(forest, replace(load_profile("duckdb"),
+                                              strategies=("nested_case", "depth_staged")))
+    assert strategy.name == "depth_staged" and "expression_depth" in reason
+    engine = connect(None)
+    load_rows(engine, load_profile("duckdb"), "t", X, forest.feature_names)
+    request = ScoringRequest(table="t", keys=(KEY,), strategy="depth_staged")
+    report = verify(model, forest, engine, request)
+    assert report.disagreements == 0, report.to_text()
+
+
+@pytest.mark.parametrize(("key", "needs"), [
+    ("select_columns", Needs(100, select_columns=2000)),
+    ("ast_elements", Needs(400_000)),
+])
+def test_other_limits_are_checked(key, needs):
+    profile = load_profile({"select_columns": "postgres", "ast_elements": "clickhouse"}[key])
+    # only the limit under test (ClickHouse's byte limit would otherwise bind first)
+    profile = replace(profile, limits={key: profile.limit(key)})
+    forest = forest_of_depth(3)[1]
+    assert limit_problem(Needs(100), forest, profile) is None
+    assert key in limit_problem(needs, forest, profile)
+
+
+def test_inline_nodes_rule_of_thumb():
+    profile = load_profile("postgres")
+    forest = forest_of_depth(6)[1]
+    assert choose(forest, profile)[0].name == "nested_case"
+    capped = replace(profile, raw={**profile.raw, "inline_nodes": forest.n_nodes - 1})
+    assert choose(forest, capped)[0].name == "model_table"
+
+
+def test_forced_strategy_is_kept_but_warned():
+    strategy, reason = choose(forest_of_depth(10)[1], load_profile("tsql"), "nested_case")
+    assert strategy.name == "nested_case" and "case_depth" in reason
+
+
+def test_estimates_bound_the_real_statement():
+    """The planner's byte estimates are upper bounds, and not wildly loose."""
+    forest = forest_of_depth(8, trees=5)[1]
+    for dialect in ("postgres", "snowflake", "tsql"):
+        profile = load_profile(dialect)
+        for name in ("nested_case", "depth_staged"):
+            strategy, _ = choose(forest, profile, name)
+            real = len(compile_forest(forest, ScoringRequest(table="t", keys=("k",),
+                                                             strategy=name), dialect)
+                       .sql.encode())
+            estimate = strategy.needs(forest, profile).statement_bytes
+            assert real <= estimate <= 4 * real, (dialect, name, real, estimate)

@@ -1,0 +1,113 @@
+"""Engine pathologies (issue 3, item 6) must not come back.
+
+PostgreSQL: JIT compiling a scoring statement's huge expressions took minutes (measured on
+PostgreSQL 15: 100 trees of depth 8 on 4000 rows ran in 15 s with jit off and was still
+compiling after 2 minutes with jit on). The postgres profile turns JIT off for the session;
+the test runs the planner's statement for such a forest on the real server and asserts the
+executed plan used no JIT and finished within a generous bound.
+
+Spark: code generation fails past the JVM's 64 KB method limit and one giant expression
+overflowed the driver's stack. The spark profile walks at most 4 levels per stage; the test
+asserts each stage expression stays small and that Spark runs the statement and agrees.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+import time
+
+import numpy as np
+import pytest
+from conftest import need
+from engine_rows import KEY, load_rows
+from sklearn.ensemble import RandomForestClassifier
+
+from tree2sql.compiler import ScoringRequest, compile_forest
+from tree2sql.dialects import load_profile
+from tree2sql.engines import connect
+from tree2sql.ingest import ingest
+from tree2sql.verify import verify
+
+GENEROUS_SECONDS = 120  # a bound that only a pathology (minutes of JIT) would cross
+SPARK_EXPRESSION_BYTES = 16_000  # one tree's step in one stage, far below 64 KB of code
+SPARK_SECONDS = 600
+SPARK_TREES = 40
+
+
+@pytest.fixture(scope="module")
+def big_forest():
+    """100 trees of depth 8 on 20 synthetic features (fixed seed): ~19k nodes."""
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(3000, 20))
+    y = (X[:, 0] + X[:, 1] * X[:, 2] + rng.normal(size=len(X)) > 0).astype(int)
+    model = RandomForestClassifier(n_estimators=100, max_depth=8, random_state=0,
+                                   n_jobs=1).fit(X, y)
+    return model, ingest(model), X[:400]
+
+
+def test_postgres_statement_runs_without_jit(big_forest):
+    url = os.environ.get("TREE2SQL_PG_URL", "")
+    need(bool(url), "PostgreSQL: run `eval \"$(bash .ci/services.sh)\"` to start one")
+    model, forest, X = big_forest
+    engine = connect(url)
+    try:
+        engine.execute("RESET jit")  # the server's default: on
+        assert str(engine.query("SHOW jit")["jit"][0]) == "on"
+        profile = load_profile("postgres")
+        load_rows(engine, profile, "t2s_jit_rows", X, forest.feature_names)
+        request = ScoringRequest(table="t2s_jit_rows", keys=(KEY,))
+        compiled = compile_forest(forest, request, "postgres")
+        started = time.perf_counter()
+        for statement in compiled.setup:
+            engine.execute(statement)
+        plan = engine.query("EXPLAIN (ANALYZE, FORMAT JSON) "
+                            + compiled.sql.split("\n", 4)[4])["QUERY PLAN"][0]
+        seconds = time.perf_counter() - started
+        plan = json.loads(plan) if isinstance(plan, str) else plan
+        assert "JIT" not in plan[0], plan[0].get("JIT")
+        assert seconds < GENEROUS_SECONDS
+        report = verify(model, forest, engine, request, compiled=compiled)
+        assert report.disagreements == 0, report.to_text()
+    finally:
+        engine.execute("RESET jit")
+        engine.close()
+
+
+def test_spark_stage_expressions_stay_small(big_forest):
+    _, forest, _ = big_forest
+    compiled = compile_forest(forest, ScoringRequest(table="t", keys=(KEY,)), "spark")
+    assert compiled.strategy == "depth_staged"
+    steps = [item for line in compiled.sql.splitlines() for item in [line.strip()]
+             if item.startswith("CASE")]
+    assert steps and max(len(s.encode()) for s in steps) < SPARK_EXPRESSION_BYTES
+
+
+def test_spark_runs_the_big_forest(big_forest):
+    need(_importable("pyspark"), "pyspark is not installed")
+    model, _, X = big_forest
+    # The first 40 of the 100 trees: the stage shape is the same, at 40% of the
+    # analysis time Spark spends on the whole forest (274 s measured for all 100).
+    model = copy.copy(model)
+    model.estimators_ = model.estimators_[:SPARK_TREES]
+    model.n_estimators = SPARK_TREES
+    forest = ingest(model)
+    engine = connect("spark://local[2]")
+    load_rows(engine, load_profile("spark"), "t2s_big_rows", X[:200], forest.feature_names)
+    request = ScoringRequest(table="t2s_big_rows", keys=(KEY,))
+    started = time.perf_counter()
+    report = verify(model, forest, engine, request)
+    seconds = time.perf_counter() - started
+    assert report.strategy == "depth_staged"
+    assert report.disagreements == 0 and report.max_abs_diff <= 1e-12, report.to_text()
+    # Measured 274 s for these 200 rows on a 2-core machine shared with other test runs:
+    # Spark's analysis of the 100-tree plan dominates. The bound catches a hang or a
+    # fallback to much worse, not a speed goal (see the performance issue).
+    assert seconds < SPARK_SECONDS
+
+
+def _importable(module: str) -> bool:
+    import importlib.util
+
+    return importlib.util.find_spec(module) is not None
