@@ -24,7 +24,7 @@ from tree2sql.strategies.base import (
     feature_bytes,
     literal_bytes,
 )
-from tree2sql.strategies.nested_case import ALWAYS_LEFT, ALWAYS_RIGHT, split_conditions
+from tree2sql.strategies.nested_case import nested_case, split_conditions
 
 DEFAULT_LEVELS = 8  # per stage, when a profile states neither a CASE limit nor stage_levels
 EXPRESSION_DEPTH_PER_LEVEL = 2  # a CASE level costs up to two levels of expression depth
@@ -57,28 +57,7 @@ def node_depths(tree: Tree) -> list[int]:
 
 def render_levels(tree: Tree, conditions: list[str | None], root: int, levels: int) -> str:
     """Nested CASE from `root` down `levels` tree levels, giving the node id reached."""
-    left, right = tree.left, tree.right
-    out: list[str] = []
-    stack: list[tuple[int, int] | str] = [(root, 0)]
-    while stack:
-        item = stack.pop()
-        if isinstance(item, str):
-            out.append(item)
-            continue
-        node, level = item
-        if left[node] == LEAF or level == levels:
-            out.append(str(node))
-            continue
-        condition = conditions[node]
-        if condition == ALWAYS_LEFT:
-            stack.append((int(left[node]), level + 1))
-        elif condition == ALWAYS_RIGHT:
-            stack.append((int(right[node]), level + 1))
-        else:
-            out.append(f"CASE WHEN {condition} THEN ")
-            stack.extend((" END", (int(right[node]), level + 1), " ELSE ",
-                          (int(left[node]), level + 1)))
-    return "".join(out)
+    return nested_case(tree, conditions, str, root, levels)
 
 
 class DepthStaged(Strategy):

@@ -54,27 +54,35 @@ def split_conditions(ctx: Context, tree_index: int,
     return conditions
 
 
-def nested_case(tree: Tree, conditions: list[str | None], leaf_value: LeafValue) -> str:
-    """Render one tree without recursion (fully grown trees can be thousands deep)."""
+def nested_case(tree: Tree, conditions: list[str | None], leaf_value: LeafValue,
+                root: int = 0, levels: int | None = None) -> str:
+    """Render a tree (or its top `levels` below `root`) without recursion.
+
+    Fully grown trees can be thousands deep. A leaf, or a node `levels` below `root`, ends
+    its branch with `leaf_value(node)`; the depth-staged and array shapes use the cut to
+    emit the node id reached.
+    """
     left, right = tree.left, tree.right
     out: list[str] = []
-    stack: list[int | str] = [0]
+    stack: list[tuple[int, int] | str] = [(root, 0)]
     while stack:
         item = stack.pop()
         if isinstance(item, str):
             out.append(item)
             continue
-        if left[item] == LEAF:
-            out.append(leaf_value(item))
+        node, level = item
+        if left[node] == LEAF or level == levels:
+            out.append(leaf_value(node))
             continue
-        condition = conditions[item]
+        condition = conditions[node]
         if condition == ALWAYS_LEFT:
-            stack.append(int(left[item]))
+            stack.append((int(left[node]), level + 1))
         elif condition == ALWAYS_RIGHT:
-            stack.append(int(right[item]))
+            stack.append((int(right[node]), level + 1))
         else:
             out.append(f"CASE WHEN {condition} THEN ")
-            stack.extend((" END", int(right[item]), " ELSE ", int(left[item])))
+            stack.extend((" END", (int(right[node]), level + 1), " ELSE ",
+                          (int(left[node]), level + 1)))
     return "".join(out)
 
 

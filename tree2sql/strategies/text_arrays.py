@@ -41,7 +41,7 @@ from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
 from tree2sql.forest import LEAF, Forest, Tree
 from tree2sql.strategies.base import Context, LeafValue, Needs, Strategy
-from tree2sql.strategies.nested_case import ALWAYS_LEFT, ALWAYS_RIGHT, split_conditions
+from tree2sql.strategies.nested_case import nested_case, split_conditions
 
 TOP_LEVELS = 0  # levels rendered as nested CASE; measured choice, see benchmarks/README.md
 QUOTE_MARK = "0x0"  # stands for a tree number inside a quoted template name
@@ -203,26 +203,8 @@ class TextArrays(Strategy):
         _, position, depth = self._layout(ctx.forest, t)
         top = np.flatnonzero((depth < self.top_levels) & (tree.left != LEAF))
         conditions = split_conditions(ctx, t, top.tolist())
-        left, right = tree.left, tree.right
-        out: list[str] = []
-        stack: list[int | str] = [0]
-        while stack:
-            item = stack.pop()
-            if isinstance(item, str):
-                out.append(item)
-                continue
-            if left[item] == LEAF or depth[item] >= self.top_levels:
-                out.append(str(int(position[item]) + 1))
-                continue
-            condition = conditions[item]
-            if condition == ALWAYS_LEFT:
-                stack.append(int(left[item]))
-            elif condition == ALWAYS_RIGHT:
-                stack.append(int(right[item]))
-            else:
-                out.append(f"CASE WHEN {condition} THEN ")
-                stack.extend((" END", int(right[item]), " ELSE ", int(left[item])))
-        return "".join(out)
+        return nested_case(tree, conditions, lambda node: str(int(position[node]) + 1),
+                           levels=self.top_levels)
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _, _ = self._layout(ctx.forest, tree_index)
