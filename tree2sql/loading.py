@@ -10,7 +10,7 @@ import zipfile
 from pathlib import Path
 from typing import Any
 
-from tree2sql.errors import UserError
+from tree2sql.errors import UserError, existing_file
 
 # Types a skops file may hold beyond those skops trusts by default: tree internals that
 # scikit-learn stores as extension types. Anything else is refused by name.
@@ -41,12 +41,8 @@ PICKLE_FIX = (
 
 def load_model(path: str | Path, *, allow_pickle: bool = False) -> Any:
     """Return the estimator stored in `path` (skops, or pickle/joblib when allowed)."""
-    path = Path(path)
-    if not path.is_file():
-        raise UserError(f"model file {str(path)!r} does not exist",
-                        "give the path of a model saved with skops.io.dump")
-    if path.stat().st_size == 0:
-        raise UserError(f"model file {str(path)!r} is empty", "save the model again")
+    path = existing_file(path, "model", "give the path of a model saved with skops.io.dump",
+                         "save the model again")
     if zipfile.is_zipfile(path):
         return _load_skops(path)
     with path.open("rb") as handle:

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from tree2sql.engines import DuckDBEngine
-from tree2sql.errors import UserError
+from tree2sql.errors import UserError, existing_file
 
 LOADED_TABLE = "t2s_rows"
 ROW_KEY = "t2s_row"  # synthesized when the user names no key column
@@ -20,12 +20,8 @@ def load_file(path: str | Path, table: str | None = None,
     """An in-memory DuckDB holding the file's rows as one table; returns (engine, table)."""
     import duckdb
 
-    path = Path(path)
-    if not path.is_file():
-        raise UserError(f"data file {str(path)!r} does not exist",
-                        "give a CSV or Parquet file, or a DuckDB file with --table")
-    if path.stat().st_size == 0:
-        raise UserError(f"data file {str(path)!r} is empty", "give a file with a header and rows")
+    path = existing_file(path, "data", "give a CSV or Parquet file, or a DuckDB file with --table",
+                         "give a file with a header and rows")
     engine = DuckDBEngine()
     source = _source_expression(engine, path, table)
     row_key = f'row_number() OVER () AS "{ROW_KEY}", ' if add_row_key else ""
