@@ -195,3 +195,30 @@ def test_compile_writes_output_file(files, tmp_path):
                      "id", "-o", out)
     assert code == 0, text
     assert pd.Series(["score_prob_0", "score_class"]).map(out.read_text().__contains__).all()
+
+
+@pytest.mark.parametrize("args", [
+    ["verify", "{model}", "--data", "\x00"],
+    ["verify", "{model}", "--data", "{rows}", "--report", "out\x00.json"],
+    ["compile", "model\x00.skops", "--table", "rows"],
+    ["compile", "{model}", "--table", "rows", "-o", "\x00"],
+    ["inspect", "{model}", "--plot", "a\x00.png"],
+    ["demo", "--workdir", "\x00"],
+])
+def test_nul_byte_in_a_path_is_a_usage_error(files, args):
+    """POSIX file names cannot hold NUL (the OS answers ValueError, not OSError): exit 2."""
+    args = [a.format(model=files / "model.skops", rows=files / "rows.csv") for a in args]
+    code, text = run(files, *args)
+    assert code == 2, text
+    assert "NUL byte" in text
+
+
+@pytest.mark.parametrize("command", [["verify", "{model}"], ["deploy", "{model}", "--source",
+                                      "rows", "--as", "view", "--name", "v"], ["status"]])
+@pytest.mark.parametrize("url", ["", "  "])
+def test_blank_url_is_a_usage_error(files, command, url):
+    """An empty --url is a mistake (an unset shell variable), not a request for the default."""
+    args = [a.format(model=files / "model.skops") for a in command]
+    code, text = run(files, *args, "--url", url)
+    assert code == 2, text
+    assert "not a database URL" in text

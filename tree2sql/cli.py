@@ -16,6 +16,7 @@ from pathlib import Path
 import click
 
 from tree2sql import __version__
+from tree2sql.cli_params import FILE, FOLDER, URL
 from tree2sql.compiler import CAUTION, Combine, ScoringRequest, compile_forest
 from tree2sql.errors import UserError
 from tree2sql.progress import progress
@@ -64,7 +65,7 @@ def cli() -> None:
 def model_options(f):
     """Options shared by every command that reads a model and compiles it."""
     options = [
-        click.argument("model", type=click.Path(dir_okay=False, path_type=Path)),
+        click.argument("model", type=FILE),
         click.option("--allow-pickle", is_flag=True,
                      help="Load a pickle/joblib model file. Such files can run code when "
                           "loaded: use only for files you trust (skops files need no flag)."),
@@ -135,7 +136,7 @@ reasons_option = click.option(
               help="Target database, by sqlglot's dialect name (duckdb, postgres, sqlite, ...).")
 @click.option("--table", required=True, metavar="NAME",
               help="Table or view holding the rows to score; schema.table allowed.")
-@click.option("--output", "-o", type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--output", "-o", type=FILE,
               help="Write the SQL to this file instead of standard output.")
 @reasons_option
 def compile_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, dialect, table,
@@ -169,9 +170,9 @@ def compile_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, d
 
 @cli.command("verify")
 @model_options
-@click.option("--data", default=None, type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--data", default=None, type=FILE,
               help="Rows to check: a CSV or Parquet file, or a DuckDB file with --table.")
-@click.option("--url", default=None, metavar="URL",
+@click.option("--url", default=None, type=URL,
               help="Instead of --data: check rows where they live, in this database "
                    "(SQLAlchemy URL), with --table or --deployed.")
 @click.option("--table", default=None, metavar="NAME",
@@ -182,7 +183,7 @@ def compile_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, d
                    "the result in the manifest.")
 @click.option("--sample", default=None, type=click.IntRange(min=1), metavar="N",
               help="With --url: check N random rows instead of all.")
-@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--report", "report_path", type=FILE,
               help="Also write the report as JSON (rows, disagreements, max_abs_diff, ties, "
                    "null_scores, ...).")
 @reasons_option
@@ -231,7 +232,7 @@ def verify_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, da
 @click.option("--rows", default=1_000_000, show_default=True,
               help="Shipments to generate and score in place.")
 @click.option("--workdir", default="tree2sql-demo", show_default=True,
-              type=click.Path(file_okay=False, path_type=Path),
+              type=FOLDER,
               help="Folder for the demo's DuckDB file, model and SQL.")
 def demo_cmd(rows, workdir):
     """Run the cold-chain example end to end on embedded DuckDB.
@@ -265,6 +266,7 @@ from tree2sql.cli_deploy import deploy_cmd, restore_cmd, status_cmd, verify_live
 cli.add_command(deploy_cmd)
 cli.add_command(status_cmd)
 cli.add_command(restore_cmd)
+import tree2sql.cli_monitor  # noqa: E402, F401  (registers `monitor` on import)
 
 
 def main() -> None:

@@ -10,6 +10,7 @@ from typing import Any
 import click
 
 from tree2sql.cli import EXIT_DISAGREE, _load, _request, model_options
+from tree2sql.cli_params import FILE, URL
 from tree2sql.compiler import CAUTION
 from tree2sql.deploy import DEFAULT_DATABASE, DEFAULT_SAMPLE, Form
 from tree2sql.errors import UserError
@@ -34,7 +35,7 @@ def _connect(url: str | None, wait_seconds: float = 0.0):
 
 @click.command("deploy")
 @model_options
-@click.option("--url", default=None, metavar="URL", help=URL_HELP)
+@click.option("--url", default=None, type=URL, help=URL_HELP)
 @click.option("--source", required=True, metavar="TABLE",
               help="Table or view holding the rows to score; schema.table allowed.")
 @click.option("--as", "form", required=True, type=click.Choice([f.value for f in Form]),
@@ -51,8 +52,12 @@ def _connect(url: str | None, wait_seconds: float = 0.0):
 @click.option("--dialect", default=None, metavar="NAME",
               help="With --dry-run and no --url: render for this database without "
                    "connecting (e.g. snowflake, bigquery), as if nothing were deployed.")
+@click.option("--reference-data", "reference_data", default=None, type=FILE,
+              help="Training rows (CSV/Parquet, columns named like --source's) or a saved "
+                   "reference JSON: the training reference `tree2sql monitor --name NAME` "
+                   "compares with, kept in the manifest row.")
 def deploy_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, url, source,
-               form, name, sample, dry_run, dialect):
+               form, name, sample, dry_run, dialect, reference_data):
     """Deploy MODEL's SQL into the database as a view, table, incremental table or function.
 
     Everything happens in one transaction: the source is checked against the model, the
@@ -73,10 +78,15 @@ def deploy_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, ur
         raise UserError("--dialect renders without connecting, so it needs --dry-run "
                         "and no --url", "drop --dialect, or add --dry-run and drop --url")
     estimator, forest = _load(model, allow_pickle)
-    request = DeployRequest(name=name, form=Form(form),
-                            scoring=_request(source, keys, columns, prefix, combine,
-                                             strategy),
-                            sample=sample)
+    scoring = _request(source, keys, columns, prefix, combine, strategy)
+    reference = None
+    if reference_data is not None:
+        from tree2sql.monitor import load_reference
+
+        reference = load_reference(estimator, forest, reference_data, dict(scoring.columns),
+                                   scoring.combine).to_json()
+    request = DeployRequest(name=name, form=Form(form), scoring=scoring, sample=sample,
+                            reference=reference)
     if dry_run:
         engine = None if dialect else _connect(url)
         try:
@@ -123,7 +133,7 @@ def deploy_cmd(model, allow_pickle, keys, columns, prefix, combine, strategy, ur
 
 
 @click.command("status")
-@click.option("--url", default=None, metavar="URL", help=URL_HELP)
+@click.option("--url", default=None, type=URL, help=URL_HELP)
 @click.option("--all", "history", is_flag=True, help="Every version, not only the active ones.")
 @click.option("--sql", "sql_name", default=None, metavar="NAME",
               help="Print the statements that created NAME's active version.")
@@ -180,7 +190,7 @@ def _check_text(verification: dict[str, Any] | None, at: str | None) -> str:
 
 
 @click.command("restore")
-@click.option("--url", default=None, metavar="URL", help=URL_HELP)
+@click.option("--url", default=None, type=URL, help=URL_HELP)
 @click.option("--name", required=True, metavar="NAME", help="The deployed name to restore.")
 @click.option("--version", "version", default=None, type=int, metavar="N",
               help="Restore this version instead of the one before the active version.")

@@ -6,15 +6,17 @@ from pathlib import Path
 
 import click
 
+from tree2sql.cli_params import FILE
+
 
 @click.command("inspect")
-@click.argument("model", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("model", type=FILE)
 @click.option("--allow-pickle", is_flag=True,
               help="Load a pickle/joblib model file. Such files can run code when loaded: "
                    "use only for files you trust (skops files need no flag).")
 @click.option("--json", "as_json", is_flag=True,
               help="Print the report as JSON (trees, features, shapes, planner) instead of text.")
-@click.option("--plot", type=click.Path(dir_okay=False, path_type=Path), metavar="FILE.png",
+@click.option("--plot", type=FILE, metavar="FILE.png",
               help="Also draw tree depth and leaf distributions and feature usage into a PNG "
                    "(needs: pip install 'tree2sql[plot]').")
 @click.option("--dialect", "dialects", multiple=True, metavar="NAME",

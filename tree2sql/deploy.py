@@ -1,6 +1,6 @@
 """Deploy compiled SQL in place as a view, table, incremental table or function.
 
-One deploy is one transaction: take the deploy lock (where the engine has one), read the
+One deploy is one transaction: take the name's deploy lock (where the engine has one), read the
 manifest, check the source fits the model, drop what the previous active version created,
 create the new object, write the manifest row, verify the live object on a sample and
 record the result. Anything failing, or a disagreement, rolls all of it back: the
@@ -34,9 +34,11 @@ from tree2sql.manifest import (
     create_statement,
     exists,
     insert_statement,
+    missing_columns,
     note_statement,
     now,
     read,
+    upgrade_statements,
     verification_statement,
 )
 from tree2sql.schema import check_source
@@ -45,8 +47,16 @@ from tree2sql.verify import Report
 
 DEFAULT_DATABASE = "tree2sql.duckdb"  # used when deploy/status/restore get no --url
 DEFAULT_SAMPLE = 1000
-# Advisory lock id shared by every tree2sql deploy into one database (PostgreSQL).
+# Advisory lock id of the manifest itself (PostgreSQL): taken by a deploy that creates or
+# upgrades it. Each deployed name has its own key (name_key), so deploys of one name take
+# turns while other names go ahead.
 LOCK_KEY = int.from_bytes(hashlib.sha256(b"tree2sql deploy").digest()[:7], "big")
+
+
+def name_key(name: str) -> int:
+    """The advisory lock id of one deployed name (7 bytes: a positive bigint)."""
+    return int.from_bytes(hashlib.sha256(b"tree2sql deploy " + name.encode()).digest()[:7],
+                          "big")
 
 
 class Form(Enum):
@@ -62,6 +72,7 @@ class DeployRequest:
     form: Form
     scoring: ScoringRequest  # table = the source, keys, column map, prefix, combine
     sample: int = DEFAULT_SAMPLE
+    reference: dict[str, Any] | None = None  # monitoring reference JSON, kept in the manifest
 
 
 @dataclass
@@ -99,8 +110,9 @@ def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
     statements = []
     if engine is None or not exists(engine):
         statements.append(create_statement(profile))
-    if "lock" in profile.ddl:
-        statements.insert(0, profile.ddl["lock"].format(key=LOCK_KEY))
+    else:
+        statements += upgrade_statements(engine, profile)  # manifests made before a column
+    statements[:0] = _lock_statements(engine, profile, request.name)
     if engine is not None:
         check_source(engine, scoring.table, features, scoring.keys,
                      text_columns(forest, scoring.columns))
@@ -113,7 +125,8 @@ def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
         tree2sql_version=__version__, dialect=profile.name, strategy=compiled.strategy,
         combine=scoring.combine.value, model=forest.source, source=scoring.table,
         keys=list(scoring.keys), source_columns=compiled.feature_columns,
-        output_columns=_outputs(request, compiled), statements=creates, created_at=now())
+        output_columns=_outputs(request, compiled), statements=creates, created_at=now(),
+        reference=request.reference)
     if (previous is not None and request.form is Form.INCREMENTAL
             and previous.form == Form.INCREMENTAL.value and previous.statements == creates):
         return Plan([*statements, creates[-1],
@@ -202,32 +215,33 @@ def _refuse_foreign_object(engine: Engine, name: str) -> None:
 def deploy(engine: Engine, estimator: Any, forest: Forest, request: DeployRequest,
            progress: Callable[[int], None] | None = None) -> tuple[Plan, Report | None]:
     """Run a deploy in one transaction, verified live before it commits."""
-    with engine.transaction():
-        profile = load_profile(engine.dialect)
-        if "lock" in profile.ddl:  # take turns before reading the manifest
-            engine.execute(profile.ddl["lock"].format(key=LOCK_KEY))
-        result = plan(engine, forest, request)
-        before = _count(engine, profile, request.name) if result.rerun else 0
-        try:
+    committing = False
+    try:
+        with engine.transaction():
+            profile = load_profile(engine.dialect)
+            taken = _take_turns(engine, profile, request.name)  # before reading the manifest
+            result = plan(engine, forest, request)
+            before = _count(engine, profile, request.name) if result.rerun else 0
             for statement in result.statements:
-                if "lock" not in profile.ddl or statement != result.statements[0]:
-                    engine.execute(statement)  # the lock is held already
-        except _database_errors() as exc:
-            raise UserError(f"the database refused the deploy, so nothing was changed: "
-                            f"{str(exc).splitlines()[0]}",
-                            "fix the cause (see tree2sql deploy --dry-run for the "
-                            "statements) and deploy again") from exc
-        if request.form is Form.INCREMENTAL:
-            result.added = _count(engine, profile, request.name) - before
-        target = result.deployment
-        report = None
-        if request.sample:
-            report = verify_deployment(estimator, forest, engine, target, request.sample,
-                                       progress)
-            engine.execute(verification_statement(profile, target.name, target.version,
-                                                  summary(report, request.sample), now()))
-        if report is not None and not report.agrees:
-            raise Disagreement(report)
+                if statement not in taken:
+                    engine.execute(statement)
+            if request.form is Form.INCREMENTAL:
+                result.added = _count(engine, profile, request.name) - before
+            target = result.deployment
+            report = None
+            if request.sample:
+                report = verify_deployment(estimator, forest, engine, target, request.sample,
+                                           progress)
+                engine.execute(verification_statement(profile, target.name, target.version,
+                                                      summary(report, request.sample),
+                                                      now()))
+            if report is not None and not report.agrees:
+                raise Disagreement(report)
+            committing = True
+    except _database_errors() as exc:  # anywhere: lock wait, checks, statements, commit
+        raise database_error(exc, "deploy", committing,
+                             "fix the cause (see tree2sql deploy --dry-run for the "
+                             "statements) and deploy again") from exc
     return result, report
 
 
@@ -243,41 +257,109 @@ def _database_errors() -> tuple[type[BaseException], ...]:
     return (duckdb.Error, sa.exc.DBAPIError)
 
 
+def _lock_statements(engine: Engine | None, profile: Profile, name: str) -> list[str]:
+    """The advisory locks a deploy or restore of `name` takes; none without the DDL key."""
+    if "lock" not in profile.ddl:
+        return []
+    keys = [name_key(name)]
+    if engine is None or not exists(engine) or missing_columns(engine):
+        keys.insert(0, LOCK_KEY)  # two first deploys must not both create the manifest
+    return [profile.ddl["lock"].format(key=key) for key in keys]
+
+
+def _take_turns(engine: Engine, profile: Profile, name: str) -> list[str]:
+    """Wait for other deploys and restores of `name` (and of the manifest, if it must be
+    created or upgraded); return the lock statements run.
+
+    Transaction-level advisory locks are released at COMMIT or ROLLBACK, also when the
+    session is terminated (PostgreSQL documentation, "Advisory Locks"), and after the wait
+    each statement sees what the previous holder committed ("Transaction Isolation", Read
+    Committed): versions are numbered without gaps or repeats. Per name, so a deploy held
+    up by a reader or a slow build never delays deploys of other names.
+    """
+    statements = _lock_statements(engine, profile, name)
+    for statement in statements:
+        engine.execute(statement)
+    return statements
+
+
+def database_error(exc: BaseException, action: str, committing: bool, fix: str) -> UserError:
+    """A UserError for a database error during a deploy or restore, naming the cause.
+
+    PostgreSQL's SQLSTATE tells a timeout from a lost session ("PostgreSQL Error Codes":
+    57014 query_canceled, 55P03 lock_not_available, 57P0x operator intervention) and
+    SQLAlchemy marks a dropped connection `connection_invalidated`. Any of them before
+    COMMIT rolls the whole transaction back (transactional DDL); only a connection lost
+    during COMMIT leaves the outcome unknown, so that case says so.
+    """
+    text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    orig = getattr(exc, "orig", None)
+    state = str(getattr(orig, "sqlstate", None) or getattr(orig, "pgcode", None) or "")
+    lost = bool(getattr(exc, "connection_invalidated", False)) or state.startswith("57P")
+    if lost and committing:
+        return UserError(f"the connection to the database was lost while committing the "
+                         f"{action}, so it may or may not have taken effect: {text}",
+                         "run tree2sql status --all on the same URL to see which version "
+                         "is active, then repeat the command if it is not the new one")
+    if lost:
+        return UserError(f"the connection to the database was lost during the {action}; "
+                         f"the server rolls back the unfinished transaction, so nothing was "
+                         f"changed: {text}",
+                         f"check the server and the network (an administrator may have "
+                         f"ended the session), then repeat the {action}")
+    if state == "57014" and "statement timeout" in text:
+        return UserError(f"the {action} ran longer than the database's statement_timeout "
+                         f"and was cancelled, so nothing was changed: {text}",
+                         "raise statement_timeout for this session, e.g. append "
+                         "options=-c%20statement_timeout%3D0 (or a longer limit such as "
+                         "30min) to the URL's query string, or ALTER ROLE ... SET "
+                         f"statement_timeout; then repeat the {action}")
+    if state == "55P03":
+        return UserError(f"the {action} waited longer than the database's lock_timeout for "
+                         f"a lock another session holds (e.g. a long query on the live "
+                         f"object), so nothing was changed: {text}",
+                         "let that session finish (see pg_stat_activity / pg_locks), or "
+                         "raise lock_timeout for this session, e.g. append "
+                         "options=-c%20lock_timeout%3D5min to the URL; then try again")
+    return UserError(f"the database refused the {action}, so nothing was changed: {text}",
+                     fix)
+
+
 def restore(engine: Engine, name: str, version: int | None = None) -> tuple[Deployment,
                                                                               Deployment]:
     """Bring back the version before the active one (or `version`): (restored, replaced)."""
     profile = load_profile(engine.dialect)
-    with engine.transaction():
-        if "lock" in profile.ddl:
-            engine.execute(profile.ddl["lock"].format(key=LOCK_KEY))
-        history = read(engine, profile, name)
-        current = next((d for d in history if d.active), None)
-        if current is None:
-            raise UserError(f"nothing named {name!r} is deployed here",
-                            "list deployments with tree2sql status")
-        earlier = [d for d in history if d.version < current.version]
-        wanted = ([d for d in history if d.version == version] if version is not None
-                  else earlier[-1:])
-        if not wanted or wanted[0].version == current.version:
-            raise UserError(f"{name!r} has no earlier version to restore "
-                            f"(active: version {current.version})",
-                            "deploy the model you want instead")
-        target = wanted[0]
-        if target.dialect != profile.name:
-            raise UserError(f"version {target.version} was written for {target.dialect}",
-                            "restore it into a database of that dialect")
-        statements = [*drop_statements(profile, current, target), *target.statements,
-                      *activate_statements(profile, name, target.version,
-                                           f"restored {now()} in place of version "
-                                           f"{current.version}")]
-        try:
-            for statement in statements:
+    committing = False
+    try:
+        with engine.transaction():
+            _take_turns(engine, profile, name)
+            history = read(engine, profile, name)
+            current = next((d for d in history if d.active), None)
+            if current is None:
+                raise UserError(f"nothing named {name!r} is deployed here",
+                                "list deployments with tree2sql status")
+            earlier = [d for d in history if d.version < current.version]
+            wanted = ([d for d in history if d.version == version] if version is not None
+                      else earlier[-1:])
+            if not wanted or wanted[0].version == current.version:
+                raise UserError(f"{name!r} has no earlier version to restore "
+                                f"(active: version {current.version})",
+                                "deploy the model you want instead")
+            target = wanted[0]
+            if target.dialect != profile.name:
+                raise UserError(f"version {target.version} was written for "
+                                f"{target.dialect}", "restore it into a database of that "
+                                "dialect")
+            for statement in [*drop_statements(profile, current, target), *target.statements,
+                              *activate_statements(profile, name, target.version,
+                                                   f"restored {now()} in place of version "
+                                                   f"{current.version}")]:
                 engine.execute(statement)
-        except _database_errors() as exc:
-            raise UserError(f"the database refused the restore, so nothing was changed: "
-                            f"{str(exc).splitlines()[0]}",
-                            "fix the cause (e.g. a changed source table) and restore again") \
-                from exc
+            committing = True
+    except _database_errors() as exc:
+        raise database_error(exc, "restore", committing,
+                             "fix the cause (e.g. a changed source table) and restore "
+                             "again") from exc
     return target, current
 
 

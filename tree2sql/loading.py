@@ -1,11 +1,14 @@
 """Read a model file safely.
 
 skops files are loaded with an allow-list of scikit-learn types. Pickle and joblib files
-can run arbitrary code while loading, so they load only when the user says so.
+can run arbitrary code while loading, so they load only when the user says so. XGBoost
+JSON models and LightGBM text models or JSON dumps are data, recognised by their content
+(not their extension) and wrapped in adapters the boosting readers dispatch on.
 """
 
 from __future__ import annotations
 
+import json
 import zipfile
 from pathlib import Path
 from typing import Any
@@ -31,6 +34,9 @@ SKOPS_ALLOWED_TYPES = frozenset({
 })
 
 ZIP_MAGIC = b"PK\x03\x04"  # a skops file is a zip archive; this opens its first entry
+HEAD_BYTES = 64  # enough to tell JSON and LightGBM's text model from pickle bytes
+JSON_FIX = ("give an XGBoost model saved with save_model('model.json'), a LightGBM text "
+            "model (save_model('model.txt')) or its dump_model() JSON, or a skops file")
 
 PICKLE_FIX = (
     "pickle and joblib files can run code when loaded. If you trust this file, pass "
@@ -46,9 +52,13 @@ def load_model(path: str | Path, *, allow_pickle: bool = False) -> Any:
     if zipfile.is_zipfile(path):
         return _load_skops(path)
     with path.open("rb") as handle:
-        if handle.read(len(ZIP_MAGIC)) == ZIP_MAGIC:  # a zip archive missing its end
-            raise UserError(f"skops file {str(path)!r} is damaged or truncated",
-                            "copy or save the model again (skops.io.dump)")
+        head = handle.read(HEAD_BYTES)
+    if head.startswith(ZIP_MAGIC):  # a zip archive missing its end
+        raise UserError(f"skops file {str(path)!r} is damaged or truncated",
+                        "copy or save the model again (skops.io.dump)")
+    booster = _load_booster(path, head)
+    if booster is not None:
+        return booster
     if not allow_pickle:
         raise UserError(f"{str(path)!r} is not a skops file; it looks like a pickle or "
                         "joblib file", PICKLE_FIX)
@@ -85,3 +95,23 @@ def _load_pickle(path: Path) -> Any:
     except Exception as exc:  # unpickling can raise anything (zlib.error, MemoryError, ...)
         raise UserError(f"cannot load {str(path)!r} as pickle/joblib: {exc}",
                         "check that the file is a complete model file") from exc
+
+
+def _load_booster(path: Path, head: bytes) -> Any:
+    """An XGBoost or LightGBM adapter when the file's content is one of theirs, else None."""
+    from tree2sql.ingest import lightgbm_json, xgboost_json
+
+    if head.replace(b"\r\n", b"\n").startswith(lightgbm_json.TEXT_MAGIC):
+        return lightgbm_json.load_lightgbm_text(path)
+    if not head.lstrip().startswith(b"{"):
+        return None
+    try:
+        document = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise UserError(f"{str(path)!r} is not a JSON model file: {exc}", JSON_FIX) from None
+    if xgboost_json.is_xgboost_json(document):
+        return xgboost_json.load_xgboost_json(path, document)
+    if lightgbm_json.is_lightgbm_dump(document):
+        return lightgbm_json.load_lightgbm_dump(path, document)
+    raise UserError(f"{str(path)!r} is JSON but neither an XGBoost model nor a LightGBM "
+                    "dump", JSON_FIX)

@@ -27,8 +27,10 @@ COLUMNS: tuple[tuple[str, str], ...] = (
     ("keys", "text"), ("source_columns", "text"), ("output_columns", "text"),
     ("statements", "text"), ("created_at", "text"), ("note", "text"),
     ("verification", "text"), ("verified_at", "text"),
+    ("reference", "text"),  # monitoring reference; older manifests get it on the next deploy
 )
-JSON_COLUMNS = ("keys", "source_columns", "output_columns", "statements", "verification")
+JSON_COLUMNS = ("keys", "source_columns", "output_columns", "statements", "verification",
+                "reference")
 
 
 @dataclass
@@ -54,6 +56,7 @@ class Deployment:
     note: str = ""
     verification: dict[str, Any] | None = None
     verified_at: str | None = None
+    reference: dict[str, Any] | None = None  # training reference for `tree2sql monitor`
 
 
 def now() -> str:
@@ -79,15 +82,34 @@ def read(engine: Engine, profile: Profile, name: str | None = None) -> list[Depl
     if not exists(engine):
         return []
     where = f" WHERE {profile.quote('name')} = {profile.string(name)}" if name else ""
-    cols = ", ".join(profile.quote(c) for c, _ in COLUMNS)
+    lacking = missing_columns(engine)
+    present = [(c, kind) for c, kind in COLUMNS if c not in lacking]
+    cols = ", ".join(profile.quote(c) for c, _ in present)
     found = engine.query(f"SELECT {cols} FROM {profile.quote(MANIFEST_TABLE)}{where}")
     rows = []
     for i in range(len(found["name"])):
-        values = {c: _cell(found[c], i, kind) for c, kind in COLUMNS}
+        values = {c: _cell(found[c], i, kind) if (c, kind) in present else None
+                  for c, kind in COLUMNS}
         for c in JSON_COLUMNS:
             values[c] = json.loads(values[c]) if values[c] else None
         rows.append(Deployment(**values))
     return sorted(rows, key=lambda d: (d.name, d.version))
+
+
+def missing_columns(engine: Engine) -> list[str]:
+    """Columns of COLUMNS that an existing manifest lacks (made by an older tree2sql)."""
+    have = {c.name.lower() for c in engine.columns(MANIFEST_TABLE)}
+    return [c for c, _ in COLUMNS if c.lower() not in have]
+
+
+def upgrade_statements(engine: Engine, profile: Profile) -> list[str]:
+    """ALTER TABLE ... ADD COLUMN for each missing (nullable, text) column, in the
+    dialect's own syntax (sqlglot), run in the deploy's transaction."""
+    import sqlglot
+
+    return [sqlglot.transpile(f'ALTER TABLE "{MANIFEST_TABLE}" ADD COLUMN "{c}" TEXT',
+                              read="postgres", write=profile.sqlglot_dialect)[0]
+            for c in missing_columns(engine)]
 
 
 def _cell(column: Any, i: int, kind: str) -> Any:

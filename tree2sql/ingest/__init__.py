@@ -45,7 +45,9 @@ def ingest(estimator: Any) -> Forest:
 # Each family module registers its readers on import.
 from tree2sql.ingest import (  # noqa: E402,F401
     isolation,
+    lightgbm_json,
     pipelines,
     sklearn_boosting,
     sklearn_trees,
+    xgboost_json,
 )
