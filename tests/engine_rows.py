@@ -174,3 +174,26 @@ def strategies_for(dialect: str) -> list[str]:
     portable ones (a profile leaves model_table out only where it was measured unusable)."""
     listed = list(load_profile(dialect).strategies)
     return listed + [s for s in ("nested_case", "depth_staged") if s not in listed]
+
+
+def open_engine(dialect: str) -> Engine:
+    """A real engine for an executed dialect; skipped locally, failed in CI when absent."""
+    import importlib.util
+    import os
+    import tempfile
+
+    from conftest import need
+
+    from tree2sql.engines import connect
+
+    if dialect == "duckdb":
+        return connect(None)
+    if dialect == "sqlite":
+        return connect("sqlite:///" + os.path.join(tempfile.mkdtemp(), "rows.db"))
+    if dialect == "postgres":
+        url = os.environ.get("TREE2SQL_PG_URL", "")
+        need(bool(url), "PostgreSQL: run `eval \"$(bash .ci/services.sh)\"` to start one")
+        return connect(url)
+    module = "chdb" if dialect == "clickhouse" else "pyspark"
+    need(importlib.util.find_spec(module) is not None, f"{module} is not installed")
+    return connect("chdb://" if dialect == "clickhouse" else "spark://local[2]")

@@ -8,15 +8,10 @@ SQLite (Python's stdlib sqlite3 through SQLAlchemy), PostgreSQL (server on loopb
 
 from __future__ import annotations
 
-import os
-import tempfile
-
 import pytest
-from conftest import need
-from engine_rows import KEY, assert_bar, cases, score, strategies_for, with_levels
+from engine_rows import KEY, assert_bar, cases, open_engine, score, strategies_for, with_levels
 
 from tree2sql.dialects import load_profile
-from tree2sql.engines import connect
 
 DIALECTS = ["duckdb", "sqlite", "postgres", "clickhouse", "spark"]
 # Engines that keep NaN apart from NULL; SQLite turns a NaN into NULL on the way in
@@ -25,34 +20,12 @@ STORES_NAN = {"duckdb": True, "sqlite": False, "postgres": True, "clickhouse": T
               "spark": True}
 
 
-def _open(dialect: str):
-    if dialect == "duckdb":
-        return connect(None)
-    if dialect == "sqlite":
-        return connect("sqlite:///" + os.path.join(tempfile.mkdtemp(), "rows.db"))
-    if dialect == "postgres":
-        url = os.environ.get("TREE2SQL_PG_URL", "")
-        need(bool(url), "PostgreSQL: run `eval \"$(bash .ci/services.sh)\"` to start one")
-        return connect(url)
-    if dialect == "clickhouse":
-        need(_importable("chdb"), "chdb is not installed")
-        return connect("chdb://")
-    need(_importable("pyspark"), "pyspark is not installed")
-    return connect("spark://local[2]")
-
-
-def _importable(module: str) -> bool:
-    import importlib.util
-
-    return importlib.util.find_spec(module) is not None
-
-
 @pytest.fixture(scope="session")
 def engines():
     """One engine per dialect for the whole session (Spark starts once: ~10-20 s)."""
     opened: dict = {}
     yield lambda dialect: opened[dialect] if dialect in opened \
-        else opened.setdefault(dialect, _open(dialect))
+        else opened.setdefault(dialect, open_engine(dialect))
     for engine in opened.values():
         engine.close()
 

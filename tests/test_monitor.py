@@ -17,8 +17,6 @@ other dialects rendered and parsed back by sqlglot.
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 import uuid
 from dataclasses import dataclass
 from pathlib import Path
@@ -30,8 +28,7 @@ import pytest
 import skops.io
 import sqlglot
 from click.testing import CliRunner
-from conftest import need
-from engine_rows import load_rows
+from engine_rows import load_rows, open_engine
 from sklearn import datasets, metrics
 from sklearn.ensemble import RandomForestClassifier, RandomForestRegressor
 
@@ -138,32 +135,11 @@ def np_psi(actual: np.ndarray, expected: np.ndarray) -> float:
 
 # ---- engines --------------------------------------------------------------------------------
 
-def _importable(module: str) -> bool:
-    import importlib.util
-
-    return importlib.util.find_spec(module) is not None
-
-
-def _open(dialect: str):
-    if dialect == "duckdb":
-        return connect(None)
-    if dialect == "sqlite":
-        return connect("sqlite:///" + os.path.join(tempfile.mkdtemp(), "rows.db"))
-    if dialect == "postgres":
-        url = os.environ.get("TREE2SQL_PG_URL", "")
-        need(bool(url), "PostgreSQL: run `eval \"$(bash .ci/services.sh)\"` to start one")
-        return connect(url)
-    if dialect == "clickhouse":
-        need(_importable("chdb"), "chdb is not installed")
-        return connect("chdb://")
-    need(_importable("pyspark"), "pyspark is not installed")
-    return connect("spark://local[2]")
-
 
 @pytest.fixture(scope="module")
 def engines():
     opened: dict = {}
-    yield lambda d: opened[d] if d in opened else opened.setdefault(d, _open(d))
+    yield lambda d: opened[d] if d in opened else opened.setdefault(d, open_engine(d))
     for engine in opened.values():
         engine.close()
 
