@@ -22,6 +22,7 @@ from tree2sql.forest import Forest, Link, Task
 from tree2sql.input_sql import InputRenderer
 from tree2sql.reasons import ReasonSql, check_reasons, reason_column_names
 from tree2sql.strategies import Context, Strategy, choose
+from tree2sql.strategies.base import LeafLiterals
 
 INTERNAL_PREFIX = "__t2s_"
 PLUS = "\n    + "
@@ -145,6 +146,11 @@ def compile_leaf_ids(forest: Forest, request: ScoringRequest, dialect: str = "du
     return builder.render_leaf_ids()
 
 
+def _votes(values: np.ndarray) -> list[str]:
+    """A vote (1.0 or 0.0) as the integer literal the majority sums add up."""
+    return ["1" if v == 1.0 else "0" for v in values.tolist()]
+
+
 def _check_names(request: ScoringRequest, outputs: list[str]) -> None:
     for name in [*request.keys, *request.columns.values(), request.table]:
         if str(name).startswith(INTERNAL_PREFIX):
@@ -169,6 +175,7 @@ class _QueryBuilder:
         self.internal = lambda name: q(INTERNAL_PREFIX + name)
         self.features = [self.internal(f"f{i}")
                          for i in range(forest.n_features + len(forest.derived))]
+        self._built: Context | None = None
 
     def render(self, scores: list[str], label: str | None,
                progress: Callable[[int], None] | None, reasons: Sequence[str] = ()) -> str:
@@ -208,6 +215,7 @@ class _QueryBuilder:
         # without common-subexpression elimination (PostgreSQL, SQLite) would otherwise
         # evaluate every tree sum once per reference: measured 3x slower on wine, 3 classes.
         last, fenced = self.internal("scores"), {self.internal("scores"), self.internal("raw")}
+        fenced |= {self.internal(name) for name in p.raw.get("fenced_stages", ())}
         if explain:
             ctes += explain.stages(last, lambda per_class: self._argmax("p", per_class))
             fenced |= set(explain.fenced)
@@ -230,8 +238,11 @@ class _QueryBuilder:
                 f"FROM {ctes[-1][0]}")
 
     def _context(self) -> Context:
-        return Context.build(self.forest, self.profile, self.internal("checked"), self.keys,
-                             self.internal("ok"), self.features)
+        """Built once: its per-tree bounds are shared by the query and the setup statements."""
+        if self._built is None:
+            self._built = Context.build(self.forest, self.profile, self.internal("checked"),
+                                        self.keys, self.internal("ok"), self.features)
+        return self._built
 
     def _input_stages(self) -> list[tuple[str, str]]:
         return [(self.internal("input"), self._input_body()),
@@ -334,18 +345,20 @@ class _QueryBuilder:
             column[:] = [running[k]]
         return stages
 
-    def _leaf_value_functions(self) -> list[Callable[[int], Callable[[int], str]]]:
-        """Per output column: tree index -> (leaf node -> SQL literal)."""
-        trees, double = self.forest.trees, self.profile.double
+    def _leaf_value_functions(self) -> list[Callable[[int], LeafLiterals]]:
+        """Per output column: tree index -> its leaf literals (a LeafValue)."""
+        trees, profile = self.forest.trees, self.profile
         if self.request.combine is Combine.MAJORITY:
             if not self.forest.is_classifier or not self.forest.aggregation.mean:
                 raise UserError("majority voting needs a classifier whose trees vote",
                                 "drop --combine majority for this model")
             votes = [np.argmax(tree.value, axis=1) for tree in trees]
-            return [lambda t, k=k: (lambda n: "1" if votes[t][n] == k else "0")
+            return [lambda t, k=k: LeafLiterals((votes[t] == k).astype(np.float64), _votes,
+                                                trees[t].is_leaf(), plain=True)
                     for k in range(self.forest.n_outputs)]
         column = (lambda k: 0) if self.forest.aggregation.tree_output else (lambda k: k)
-        return [lambda t, k=k: (lambda n: double(trees[t].value[n, column(k)]))
+        return [lambda t, k=k: LeafLiterals(trees[t].value[:, column(k)], profile.doubles,
+                                            trees[t].is_leaf(), profile.plain_doubles)
                 for k in range(self.forest.n_raw)]
 
     def _link_stages(self) -> list[tuple[str, str]]:

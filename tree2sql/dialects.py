@@ -7,10 +7,12 @@ through sqlglot so that hostile names cannot change a statement.
 from __future__ import annotations
 
 import functools
+import re
 import tomllib
 from dataclasses import dataclass, field
 from typing import Any
 
+import numpy as np
 from sqlglot import exp
 
 from tree2sql.errors import UserError
@@ -39,21 +41,43 @@ class Profile:
     raw: dict[str, Any] = field(default_factory=dict, repr=False)
 
     def quote(self, name: str) -> str:
-        """An identifier, always quoted, escaped for this dialect."""
-        return exp.to_identifier(_no_nul(str(name)), quoted=True).sql(
-            dialect=self.sqlglot_dialect)
+        """An identifier, always quoted, escaped for this dialect (cached: sqlglot's
+        generator costs far more than the lookup, and names repeat per tree)."""
+        return _quote(self.sqlglot_dialect, str(name))
 
     def qualified(self, dotted: str) -> str:
         """A possibly schema-qualified table name, each part quoted (split on dots)."""
         return ".".join(self.quote(part) for part in dotted.split("."))
 
     def string(self, text: str) -> str:
-        return exp.Literal.string(_no_nul(str(text))).sql(dialect=self.sqlglot_dialect)
+        """A string literal. Text of characters no dialect escapes (a node array's numbers)
+        is spliced into the dialect's quotes, skipping sqlglot for megabyte literals."""
+        text = str(text)
+        if _PLAIN_TEXT.fullmatch(text):
+            before, after = _string_quotes(self.sqlglot_dialect)
+            return before + text + after
+        return _string(self.sqlglot_dialect, text)
 
     def double(self, value: float) -> str:
         """A double literal; `literal_style` in the profile picks how (see tree2sql.exact)."""
         style = self.raw.get("literal_style", SHORTEST)
         return self.double_literal.format(text=float_text(value, style))
+
+    @property
+    def plain_doubles(self) -> bool:
+        """Literals are the shortest round-trip number text itself (no template, no
+        arithmetic), so they read back with float() and can be written in bulk."""
+        return (self.double_literal == "{text}"
+                and self.raw.get("literal_style", SHORTEST) == SHORTEST)
+
+    def doubles(self, values: np.ndarray) -> list[str]:
+        """`double` of each value, in bulk: one repr per value on the common plain path;
+        other literal styles, and non-finite values (to raise as `double` does), go
+        through `double` one by one."""
+        floats = np.asarray(values, dtype=np.float64).ravel()
+        if not self.plain_doubles or not np.isfinite(floats).all():
+            return [self.double(v) for v in floats.tolist()]
+        return [text if "e" in text else text + "e0" for text in map(repr, floats.tolist())]
 
     def cast_double(self, sql: str) -> str:
         return f"CAST({sql} AS {self.double_type})"
@@ -83,6 +107,27 @@ class Profile:
             raise UserError(f"the {self.name} profile has no {kind!r} statement form",
                             f"add `{kind}` under [ddl] in dialects/{self.name}.toml")
         return template.format(**parts)
+
+
+# Characters sqlglot never escapes inside a string literal, in any dialect.
+_PLAIN_TEXT = re.compile(r"[0-9A-Za-z.,+\-\[\] ]*")
+_QUOTE_PROBE = "0x0"
+
+
+@functools.lru_cache(maxsize=1 << 16)
+def _quote(dialect: str, name: str) -> str:
+    return exp.to_identifier(_no_nul(name), quoted=True).sql(dialect=dialect)
+
+
+def _string(dialect: str, text: str) -> str:
+    return exp.Literal.string(_no_nul(text)).sql(dialect=dialect)
+
+
+@functools.cache
+def _string_quotes(dialect: str) -> tuple[str, str]:
+    """What the dialect writes before and after a plain string literal's text."""
+    before, _, after = _string(dialect, _QUOTE_PROBE).partition(_QUOTE_PROBE)
+    return before, after
 
 
 def _no_nul(text: str) -> str:

@@ -20,6 +20,32 @@ from tree2sql.forest import Forest
 LeafValue = Callable[[int], str]  # node id of a leaf -> SQL literal for that leaf
 
 
+class LeafLiterals:
+    """A LeafValue over per-node numbers (`values[n]`, leaves used), written in bulk.
+
+    Calling it gives the leaf's literal, as any LeafValue; the literals of a whole tree
+    are made in one `Profile.doubles` pass on first use instead of one call per leaf.
+    `plain` says each literal reads back with float() as exactly its value, so a shape
+    may write `values` itself (text_arrays) without making literals at all.
+    """
+
+    def __init__(self, values: np.ndarray, literals: Callable[[np.ndarray], list[str]],
+                 is_leaf: np.ndarray, plain: bool) -> None:
+        self.values, self.plain = values, plain
+        self._make, self._is_leaf = literals, is_leaf
+        self._literals: dict[int, str] | None = None
+
+    def __call__(self, node: int) -> str:
+        if self._literals is None:
+            leaves = np.flatnonzero(self._is_leaf)
+            self._literals = dict(zip(leaves.tolist(), self._make(self.values[leaves]),
+                                      strict=True))
+        literal = self._literals.get(node)
+        if literal is None:  # not a leaf (a shape cut the tree there): made on its own
+            return self._make(self.values[node:node + 1])[0]
+        return literal
+
+
 @dataclass(frozen=True)
 class Needs:
     """What a shape asks of an engine, for the planner to hold against the profile's limits.

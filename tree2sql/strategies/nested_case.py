@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 from tree2sql.dialects import Profile
 from tree2sql.forest import LEAF, Forest, Tree
 from tree2sql.strategies.base import (
@@ -33,24 +35,27 @@ def split_conditions(ctx: Context, tree_index: int,
     `nodes` limits the work to those split nodes (the others stay None).
     """
     tree: Tree = ctx.forest.trees[tree_index]
-    bound = ctx.bounds[tree_index]
     routes_missing = ctx.forest.accepts_missing
     conditions: list[str | None] = [None] * tree.n_nodes
     if nodes is None:
         nodes = (tree.left != LEAF).nonzero()[0].tolist()
-    for node in nodes:
-        x = ctx.features[tree.feature[node]]
-        missing_left = routes_missing and bool(tree.missing_left[node])
-        b = float(bound[node])
+    bound = ctx.bounds[tree_index][nodes].tolist()
+    # One bulk pass for every bound written as a literal (all but the infinite ones).
+    written = [b for b in bound if not math.isinf(b)]
+    literals = iter(ctx.profile.doubles(np.array(written, dtype=np.float64)))
+    feature, missing = tree.feature.tolist(), tree.missing_left.tolist()
+    for node, b in zip(nodes, bound, strict=True):
+        x = ctx.features[feature[node]]
+        missing_left = routes_missing and bool(missing[node])
         if b == math.inf:
             conditions[node] = ALWAYS_LEFT if missing_left or not routes_missing \
                 else f"{x} IS NOT NULL"
         elif b == -math.inf:
             conditions[node] = f"{x} IS NULL" if missing_left else ALWAYS_RIGHT
         elif missing_left:
-            conditions[node] = f"({x} <= {ctx.profile.double(b)} OR {x} IS NULL)"
+            conditions[node] = f"({x} <= {next(literals)} OR {x} IS NULL)"
         else:
-            conditions[node] = f"{x} <= {ctx.profile.double(b)}"
+            conditions[node] = f"{x} <= {next(literals)}"
     return conditions
 
 
@@ -62,28 +67,47 @@ def nested_case(tree: Tree, conditions: list[str | None], leaf_value: LeafValue,
     its branch with `leaf_value(node)`; the depth-staged and array shapes use the cut to
     emit the node id reached.
     """
-    left, right = tree.left, tree.right
-    out: list[str] = []
-    stack: list[tuple[int, int] | str] = [(root, 0)]
-    while stack:
-        item = stack.pop()
-        if isinstance(item, str):
-            out.append(item)
-            continue
-        node, level = item
-        if left[node] == LEAF or level == levels:
-            out.append(leaf_value(node))
-            continue
-        condition = conditions[node]
-        if condition == ALWAYS_LEFT:
-            stack.append((int(left[node]), level + 1))
-        elif condition == ALWAYS_RIGHT:
-            stack.append((int(right[node]), level + 1))
-        else:
-            out.append(f"CASE WHEN {condition} THEN ")
-            stack.extend((" END", (int(right[node]), level + 1), " ELSE ",
-                          (int(left[node]), level + 1)))
-    return "".join(out)
+    return CaseText(tree, conditions, root, levels).render(leaf_value)
+
+
+class CaseText:
+    """A tree's nested CASE with holes for its leaf values: the walk is done once, and
+    each output (class, leaf id) only fills the holes."""
+
+    def __init__(self, tree: Tree, conditions: list[str | None], root: int = 0,
+                 levels: int | None = None) -> None:
+        left, right = tree.left.tolist(), tree.right.tolist()
+        depth_limit = -1 if levels is None else levels
+        pieces: list[str] = []
+        holes: list[tuple[int, int]] = []  # (index in pieces, node whose value goes there)
+        # Items are pieces of text, or (node, level) pairs still to render.
+        stack: list[tuple[int, int] | str] = [(root, 0)]
+        pop, push, extend = stack.pop, stack.append, stack.extend
+        while stack:
+            item = pop()
+            if item.__class__ is str:
+                pieces.append(item)
+                continue
+            node, level = item
+            if left[node] == LEAF or level == depth_limit:
+                holes.append((len(pieces), node))
+                pieces.append("")
+                continue
+            condition = conditions[node]
+            if condition == ALWAYS_LEFT:
+                push((left[node], level + 1))
+            elif condition == ALWAYS_RIGHT:
+                push((right[node], level + 1))
+            else:
+                pieces.append(f"CASE WHEN {condition} THEN ")
+                extend((" END", (right[node], level + 1), " ELSE ", (left[node], level + 1)))
+        self.pieces, self.holes = pieces, holes
+
+    def render(self, leaf_value: LeafValue) -> str:
+        out = self.pieces.copy()
+        for index, node in self.holes:
+            out[index] = leaf_value(node)
+        return "".join(out)
 
 
 class NestedCase(Strategy):
@@ -91,13 +115,13 @@ class NestedCase(Strategy):
     summary = "one nested CASE expression per tree"
 
     def __init__(self) -> None:
-        self._conditions: dict[int, list[str | None]] = {}
+        self._cases: dict[int, CaseText] = {}
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
-        if tree_index not in self._conditions:
-            self._conditions[tree_index] = split_conditions(ctx, tree_index)
-        return nested_case(ctx.forest.trees[tree_index], self._conditions[tree_index],
-                           leaf_value)
+        if tree_index not in self._cases:
+            tree = ctx.forest.trees[tree_index]
+            self._cases[tree_index] = CaseText(tree, split_conditions(ctx, tree_index))
+        return self._cases[tree_index].render(leaf_value)
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         """Every node written once per output; CASE nests as deep as the deepest tree."""

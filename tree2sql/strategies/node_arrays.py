@@ -75,8 +75,7 @@ class NodeArrays(Strategy):
             right = np.where(np.isposinf(ctx.bounds[t][order]) & ~leaf, left, right)
             columns = {
                 "feature": [str(v) for v in feature.tolist()],
-                "bound": [p.double(0.0) if lf else p.double(b)
-                          for b, lf in zip(bound.tolist(), leaf.tolist(), strict=True)],
+                "bound": p.doubles(np.where(leaf, 0.0, bound)),
                 "right": [str(v) for v in right.tolist()],
                 "missing": [str(v) for v in missing.tolist()],
             }
@@ -115,8 +114,9 @@ class NodeArrays(Strategy):
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _ = self._layout(ctx, tree_index)
         tree = ctx.forest.trees[tree_index]
-        items = [leaf_value(int(node)) if tree.left[node] == LEAF else "0"
-                 for node in order.tolist()]
+        is_leaf = (tree.left[order] == LEAF).tolist()
+        items = [leaf_value(node) if leaf else "0"
+                 for node, leaf in zip(order.tolist(), is_leaf, strict=True)]
         return self._index(ctx, self._array(ctx, items), self._name(ctx, "n", tree_index))
 
     def statement_size_estimate(self, forest: Forest) -> int:

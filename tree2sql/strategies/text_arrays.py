@@ -40,7 +40,7 @@ import numpy as np
 from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
 from tree2sql.forest import LEAF, Forest, Tree
-from tree2sql.strategies.base import Context, LeafValue, Needs, Strategy
+from tree2sql.strategies.base import Context, LeafLiterals, LeafValue, Needs, Strategy
 from tree2sql.strategies.nested_case import nested_case, split_conditions
 
 TOP_LEVELS = 0  # levels rendered as nested CASE; measured choice, see benchmarks/README.md
@@ -209,10 +209,16 @@ class TextArrays(Strategy):
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _, _ = self._layout(ctx.forest, tree_index)
         tree = ctx.forest.trees[tree_index]
-        is_leaf = (tree.left[order] == LEAF).tolist()
-        items = [leaf_value(node) if leaf else "0"
-                 for node, leaf in zip(order.tolist(), is_leaf, strict=True)]
         n = self._name(ctx, "n", tree_index)
+        leaf_mask = tree.left[order] == LEAF
+        if isinstance(leaf_value, LeafLiterals) and leaf_value.plain:
+            # The literals would read back as exactly these numbers: write them directly.
+            numbers = np.where(leaf_mask, leaf_value.values[order], 0.0)
+            if np.isfinite(numbers).all():
+                return self._index(ctx, self._array(ctx, numbers.tolist(),
+                                                    ctx.profile.double_type), n)
+        items = [leaf_value(node) if leaf else "0"
+                 for node, leaf in zip(order.tolist(), leaf_mask.tolist(), strict=True)]
         try:
             values = [float(item) for item in items]
         except ValueError:  # not plain numbers: keep the literals as SQL

@@ -2,7 +2,7 @@
 -- model fingerprint sha256:33dc85aced683fe47dfbfed29c8abc7e1037fbb1e15363e2c71b6d56eb7d3ebb
 -- dialect sqlite, strategy nested_case, combine average
 -- Scores can decide things about people: verify this SQL against the model (tree2sql verify) before use, keep model and SQL under review, and follow your organisation's model-risk practice and local rules.
-WITH "__t2s_input" AS (
+WITH "__t2s_input" AS MATERIALIZED (
 SELECT "row id",
   CAST("x0" AS REAL) AS "__t2s_f0",
   CAST("x1" AS REAL) AS "__t2s_f1",
