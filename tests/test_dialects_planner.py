@@ -89,12 +89,17 @@ def test_statement_bytes_limit_snowflake():
     assert len(inline.sql.encode()) > profile.limit("statement_bytes")  # the limit was real
 
 
-def test_statement_bytes_limit_clickhouse_refuses_rather_than_emits():
-    """ClickHouse's 256 KiB with no model-table shape there: a clear error, not bad SQL."""
+def test_statement_bytes_limit_refuses_rather_than_emits():
+    """No listed shape fits: a clear error, not bad SQL. ClickHouse's default max_query_size
+    (256 KiB, ClickHouse docs, Settings) without the profile's session setting raising it."""
     profile = load_profile("clickhouse")
-    assert choose(forest_of_depth(6)[1], profile)[0].name == "nested_case"
+    capped = replace(profile, limits={**profile.limits, "statement_bytes": 262144},
+                     strategies=("nested_case", "depth_staged"))
+    assert choose(forest_of_depth(6)[1], capped)[0].name == "nested_case"
+    large = forest_of_depth(10, trees=60)[1]
     with pytest.raises(UserError, match="statement_bytes"):
-        choose(forest_of_depth(10, trees=60)[1], profile)
+        choose(large, capped)
+    assert choose(large, profile)[0].name == "text_arrays"  # with the raised limit
 
 
 def test_expression_depth_limit_duckdb():
@@ -120,8 +125,11 @@ def test_expression_depth_limit_duckdb():
 ])
 def test_other_limits_are_checked(key, needs):
     profile = load_profile({"select_columns": "postgres", "ast_elements": "clickhouse"}[key])
-    # only the limit under test (ClickHouse's byte limit would otherwise bind first)
-    profile = replace(profile, limits={key: profile.limit(key)})
+    # only the limit under test (ClickHouse's byte limit would otherwise bind first); for
+    # ast_elements ClickHouse's default max_ast_elements, 50000 (ClickHouse docs, Settings),
+    # which the profile's session settings raise
+    limit = 50_000 if key == "ast_elements" else profile.limit(key)
+    profile = replace(profile, limits={key: limit})
     forest = forest_of_depth(3)[1]
     assert limit_problem(Needs(100), forest, profile) is None
     assert key in limit_problem(needs, forest, profile)

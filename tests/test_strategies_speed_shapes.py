@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from engine_rows import cases
+from engine_rows import Case, assert_bar, cases, open_engine, score
 from helpers import assert_agrees, check
 from sklearn.datasets import load_breast_cancer, load_iris
 from sklearn.ensemble import (
@@ -21,8 +21,9 @@ from sklearn.ensemble import (
 from tree2sql.compiler import ScoringRequest, compile_forest
 from tree2sql.dialects import load_profile
 from tree2sql.engines import DuckDBEngine
+from tree2sql.errors import UserError
 from tree2sql.ingest import ingest
-from tree2sql.strategies import text_arrays
+from tree2sql.strategies import choose, text_arrays
 from tree2sql.strategies.text_arrays import TextArrays, node_depths, preorder_positions
 
 SPEED_SHAPES = ("text_arrays",)
@@ -131,3 +132,58 @@ def test_text_arrays_agrees_on_boosted_trees(make) -> None:
     X, y = load_iris(return_X_y=True)
     model = make().fit(X, y)
     assert_agrees(check(model, X, strategy="text_arrays"))
+
+
+@pytest.fixture(scope="module")
+def clickhouse():
+    engine = open_engine("clickhouse")
+    yield engine
+    engine.close()
+
+
+@pytest.mark.parametrize("name", sorted(cases()))
+def test_text_arrays_as_constants_agrees_on_clickhouse(clickhouse, name: str) -> None:
+    """ClickHouse's node arrays as WITH constants, on every bundled dataset (sources in
+    tests/engine_rows.py): forests, boosted trees, regressors, NaN/NULL and edge rows."""
+    report = score(clickhouse, cases()[name], "text_arrays")
+    assert report.strategy == "text_arrays"
+    assert_bar(report, cases()[name])
+
+
+def test_text_arrays_as_constants_agrees_on_grown_and_boosted_trees(clickhouse) -> None:
+    """Trees of uneven depth (leaves loop on themselves while deeper trees walk on) and
+    summed trees with a link function."""
+    # breast cancer: Street, Wolberg & Mangasarian (1993), UCI ML repository.
+    X, y = load_breast_cancer(return_X_y=True)
+    for model in (RandomForestClassifier(n_estimators=8, random_state=0),
+                  HistGradientBoostingClassifier(max_iter=15, random_state=0)):
+        model.fit(X, y)
+        forest = ingest(model)
+        case = Case(f"const_{type(model).__name__.lower()}", model, forest, X,
+                    np.zeros(X.shape, dtype=bool))
+        depths = {tree.depth() for tree in forest.trees}
+        assert len(depths) > 1 or isinstance(model, HistGradientBoostingClassifier)
+        report = score(clickhouse, case, "text_arrays")
+        assert report.disagreements == 0 and report.rows == len(X), report.to_text()
+
+
+def test_clickhouse_takes_text_arrays_past_the_parse_tree_limit() -> None:
+    """A forest whose nested CASE would pass ClickHouse's default max_ast_elements (50000,
+    ClickHouse docs, Settings) gets the node arrays as named constants: one literal each,
+    defined once in the WITH clause, nothing cross-joined or carried."""
+    X, y = load_breast_cancer(return_X_y=True)
+    forest = ingest(RandomForestClassifier(n_estimators=150, random_state=0).fit(X, y))
+    strategy, _ = choose(forest, load_profile("clickhouse"))
+    assert strategy.name == "text_arrays"
+    compiled = compile_forest(forest, ScoringRequest("t", ("k",)), "clickhouse")
+    assert compiled.sql.count('AS "__t2s_slot0"') == 1
+    assert "CROSS JOIN" not in compiled.sql
+    assert "SET max_query_size = 1073741824" in compiled.setup
+
+
+@pytest.mark.parametrize("strategy", ["node_arrays", "text_arrays"])
+def test_array_shape_forced_where_the_profile_lacks_its_syntax(strategy: str) -> None:
+    """A clear error naming the missing profile keys, not a KeyError."""
+    forest = cases()["iris"].forest
+    with pytest.raises(UserError, match="sqlite profile has no"):
+        compile_forest(forest, ScoringRequest("t", ("k",), strategy=strategy), "sqlite")

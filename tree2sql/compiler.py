@@ -199,7 +199,7 @@ class _QueryBuilder:
             raws = [f"({s[-1]}) / {divisor}" for s in sums]
         else:
             raws = [s[-1] for s in sums]
-        raws = [f"CASE WHEN {ok} = 1 THEN {r} END AS {self.internal(f'{raw_name}{k}')}"
+        raws = [f"{p.guarded(ok, r)} AS {self.internal(f'{raw_name}{k}')}"
                 for k, r in enumerate(raws)]
         if explain:
             raws += explain.credit_items(credit_sums, ok)
@@ -221,21 +221,27 @@ class _QueryBuilder:
             fenced |= set(explain.fenced)
             last = ctes[-1][0]
             final += explain.output_items(list(reasons))
-        fence = p.raw.get("cte_materialized", "")
-        with_clause = ",\n".join(
-            f"{name} AS {fence + ' ' if fence and name in fenced else ''}(\n{body}\n)"
-            for name, body in ctes)
-        return (f"WITH {with_clause}\nSELECT {self._select_list(final)}\n"
-                f"FROM {last}")
+        return (f"WITH {self._with_clause(ctx, ctes, fenced)}\n"
+                f"SELECT {self._select_list(final)}\nFROM {last}")
 
     def render_leaf_ids(self) -> str:
         ctx = self._context()
         ctes = [*self._input_stages(), *self.strategy.stages(ctx)]
         leaves = [f"{self.strategy.tree_term(ctx, t, str)} AS {self.internal(f'leaf{t}')}"
                   for t in range(len(self.forest.trees))]
-        with_clause = ",\n".join(f"{name} AS (\n{body}\n)" for name, body in ctes)
-        return (f"WITH {with_clause}\nSELECT {self._select_list(self.keys + leaves)}\n"
-                f"FROM {ctes[-1][0]}")
+        return (f"WITH {self._with_clause(ctx, ctes)}\n"
+                f"SELECT {self._select_list(self.keys + leaves)}\nFROM {ctes[-1][0]}")
+
+    def _with_clause(self, ctx: Context, ctes: list[tuple[str, str]],
+                     fenced: set[str] = frozenset()) -> str:
+        """The strategy's named constants, then the CTEs (`fenced` ones materialized)."""
+        p = self.profile
+        constants = [p.raw["constant_alias"].format(value=value, name=name)
+                     for name, value in self.strategy.constants(ctx)]
+        fence = p.raw.get("cte_materialized", "")
+        return ",\n".join([*constants, *(
+            f"{name} AS {fence + ' ' if fence and name in fenced else ''}(\n{body}\n)"
+            for name, body in ctes)])
 
     def _context(self) -> Context:
         """Built once: its per-tree bounds are shared by the query and the setup statements."""

@@ -85,6 +85,11 @@ class Profile:
     def missing_as_null(self, sql: str) -> str:
         return self.nan_to_null.format(x=sql)
 
+    def guarded(self, ok: str, value: str) -> str:
+        """`value` where the guard column `ok` is 1, else NULL (profile key `guarded`)."""
+        return self.raw.get("guarded", "CASE WHEN {ok} = 1 THEN {value} END").format(
+            ok=ok, value=value)
+
     def label(self, value: Any) -> str:
         """A class label as a SQL literal of its own type."""
         if isinstance(value, bool):

@@ -161,9 +161,9 @@ class ReasonSql:
         return f"CASE {' '.join(branches)} ELSE {literals[starts[-1]]} END"
 
     def credit_items(self, sums: list[list[str]], ok: str) -> list[str]:
-        """`CASE WHEN ok = 1 THEN (sum) / n_trees END AS rc_c<i>_<j>`, as the scores divide."""
+        """`(sum) / n_trees AS rc_c<i>_<j>` where ok = 1 (else NULL), as the scores divide."""
         divisor, n_out = self.profile.double(len(self.forest.trees)), len(self.outputs)
-        return [f"CASE WHEN {ok} = 1 THEN ({s[-1]}) / {divisor} END AS "
+        return [f"{self.profile.guarded(ok, f'({s[-1]}) / {divisor}')} AS "
                 f"{self._credit(index // n_out, self.outputs[index % n_out])}"
                 for index, s in enumerate(sums)]
 

@@ -41,7 +41,7 @@ def limit_problem(needs: Needs, forest: Forest, profile: Profile) -> str | None:
          "expression about {need} levels deep"),
         ("select_columns", needs.select_columns + forest.n_outputs * sum_stages,
          "select list of about {need} columns"),
-        ("ast_elements", int(needs.statement_bytes * AST_ELEMENTS_PER_BYTE),
+        ("ast_elements", needs.ast_elements or int(needs.statement_bytes * AST_ELEMENTS_PER_BYTE),
          "about {need} parse-tree elements"),
     ]
     for key, need, what in checks:

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tree2sql.dialects import Profile
+from tree2sql.errors import UserError
 from tree2sql.exact import bounds
 from tree2sql.forest import Forest
 
@@ -52,7 +53,8 @@ class Needs:
 
     Figures are estimates meant as upper bounds: `case_depth` and `expression_depth` of
     the deepest expression the strategy writes (the compiler adds its own), the widest
-    select list, and whether the model's nodes are written into the statement itself.
+    select list, whether the model's nodes are written into the statement itself, and the
+    parse tree's elements (None: estimated from the statement bytes).
     """
 
     statement_bytes: int
@@ -60,6 +62,7 @@ class Needs:
     expression_depth: int = 4
     select_columns: int = 0
     inline: bool = True
+    ast_elements: int | None = None
 
 
 @dataclass
@@ -91,6 +94,15 @@ class Context:
         return self.profile.quote(f"__t2s_{name}")
 
 
+def require_keys(profile: Profile, keys: tuple[str, ...], shape: str) -> None:
+    """Refuse a shape whose syntax the profile does not give (e.g. forced with --strategy)."""
+    missing = [k for k in keys if k not in profile.raw]
+    if missing:
+        raise UserError(f"the {profile.name} profile has no {', '.join(missing)} "
+                        f"for the {shape} shape",
+                        "use another --strategy, or add the keys to the dialect profile")
+
+
 def literal_bytes(profile: Profile) -> int:
     """Length of the longest double literal the profile writes (17 digits, 3-digit exponent)."""
     return len(profile.double(-2.2250738585072014e-308))
@@ -109,6 +121,11 @@ class Strategy(ABC):
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         """Extra CTEs (name, SELECT body) after the input; the last one becomes the source."""
+        return []
+
+    def constants(self, ctx: Context) -> list[tuple[str, str]]:
+        """Named constant expressions (name, SQL) the statement's WITH clause defines ahead
+        of its CTEs, for profiles with `constant_alias`; stages and terms use the names."""
         return []
 
     @abstractmethod

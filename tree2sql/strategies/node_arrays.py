@@ -22,9 +22,10 @@ from __future__ import annotations
 import numpy as np
 
 from tree2sql.forest import LEAF, Forest, Tree
-from tree2sql.strategies.base import Context, LeafValue, Strategy
+from tree2sql.strategies.base import Context, LeafValue, Strategy, require_keys
 
 DOUBLE_MAX = float(np.finfo(np.float64).max)
+REQUIRED_KEYS = ("array_literal", "array_index")
 
 
 def preorder_layout(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
@@ -57,6 +58,7 @@ class NodeArrays(Strategy):
         return ctx.prefix(f"{what}{t}")
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
+        require_keys(ctx.profile, REQUIRED_KEYS, self.name)
         forest, p = ctx.forest, ctx.profile
         null_slot = len(ctx.features) + 1  # after the inputs and any derived ones
         model_columns = []

@@ -8,7 +8,9 @@ Why this shape (figures in benchmarks/README.md):
 * The arrays are per tree: a gather from a constant list copies that list once per vector,
   so one array for the whole forest is slow, and small ones are cheap.
 * They come in through one cross join with a one-row model relation and are carried from
-  stage to stage as columns (a cross join per stage costs planning time per stage).
+  stage to stage as columns (a cross join per stage costs planning time per stage). An
+  engine that copies a cross-joined array into every row (ClickHouse) names them instead
+  as constants of the WITH clause (profile key `constant_alias`); nothing is carried.
 * Optionally the top `top_levels` levels are a small nested CASE in the first stage, saving
   that many stages. Measured on DuckDB this loses (a nested CASE is slow to plan), so the
   default is 0: every level is one CTE stage of gathers.
@@ -28,7 +30,7 @@ positions root first (pre-order), so a left child is the next id:
 
 Profile keys: `array_from_text` over {text} (a quoted string literal) and {element},
 `array_literal` over {items}, `array_index` over {array} and {index}, `integer_type`,
-`nan_literal` and `infinity_literal`.
+`nan_literal` and `infinity_literal`; optionally `constant_alias` over {value} and {name}.
 """
 
 from __future__ import annotations
@@ -40,7 +42,14 @@ import numpy as np
 from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
 from tree2sql.forest import LEAF, Forest, Tree
-from tree2sql.strategies.base import Context, LeafLiterals, LeafValue, Needs, Strategy
+from tree2sql.strategies.base import (
+    Context,
+    LeafLiterals,
+    LeafValue,
+    Needs,
+    Strategy,
+    require_keys,
+)
 from tree2sql.strategies.nested_case import nested_case, split_conditions
 
 TOP_LEVELS = 0  # levels rendered as nested CASE; measured choice, see benchmarks/README.md
@@ -98,6 +107,8 @@ class TextArrays(Strategy):
     summary = ("per-tree node arrays parsed from text, one CTE stage per level "
                "(vectorized engines)")
 
+    required_keys = REQUIRED_KEYS
+
     def __init__(self, top_levels: int = TOP_LEVELS) -> None:
         self.top_levels = top_levels
         self._layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
@@ -119,11 +130,7 @@ class TextArrays(Strategy):
     # -- SQL pieces -----------------------------------------------------------------------
 
     def _check(self, profile: Profile) -> None:
-        missing = [k for k in REQUIRED_KEYS if k not in profile.raw]
-        if missing:
-            raise UserError(f"the {profile.name} profile has no {', '.join(missing)} "
-                            f"for the {self.name} shape",
-                            "use another --strategy, or add the keys to the dialect profile")
+        require_keys(profile, self.required_keys, self.name)
 
     def _array(self, ctx: Context, values: list, element: str) -> str:
         return ctx.profile.raw["array_from_text"].format(
@@ -144,7 +151,6 @@ class TextArrays(Strategy):
         self._check(ctx.profile)
         forest, p = ctx.forest, ctx.profile
         walked = self._walked_levels(forest)
-        k = len(ctx.features)
         xs = ctx.prefix("xs")
         start = [f"{self._start(ctx, t)} AS {self._name(ctx, 'n', t)}"
                  for t in range(len(forest.trees))]
@@ -152,43 +158,62 @@ class TextArrays(Strategy):
             return [(ctx.prefix("walk0"),
                      "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *start])
                      + f"\nFROM {ctx.source}")]
-        model_columns, carried = [], []
-        integer, double = p.raw["integer_type"], p.double_type
-        for t, tree in enumerate(forest.trees):
-            order, position, _ = self._layout(forest, t)
-            leaf = tree.left[order] == LEAF
-            own = np.arange(1, len(order) + 1)
-            goes_left = tree.missing_left[order] & forest.accepts_missing
-            columns = {
-                "slot": (np.where(leaf, 2 * k + 1,
-                                  tree.feature[order] + 1 + np.where(goes_left, 0, k)), integer),
-                "bound": (np.where(leaf, 0.0, ctx.bounds[t][order]), double),
-                "right": (np.where(leaf, own,
-                                   position[np.where(leaf, 0, tree.right[order])] + 1), integer),
-            }
-            for what, (values, element) in columns.items():
-                name = self._name(ctx, what, t)
-                model_columns.append(f"{self._array(ctx, values.tolist(), element)} AS {name}")
-                carried.append(name)
-        model = ctx.prefix("model")
-        low, nan = f"-{p.raw['infinity_literal']}", p.raw["nan_literal"]
-        row = ([f"COALESCE({x}, {low})" for x in ctx.features]
-               + [f"COALESCE({x}, {nan})" for x in ctx.features] + [nan])
-        row_array = p.raw["array_literal"].format(items=", ".join(row))
-        stages = [
-            (model, "SELECT " + ",\n  ".join(model_columns)),
-            (ctx.prefix("walk0"),
-             "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, f"{row_array} AS {xs}", *carried,
-                                       *start])
-             + f"\nFROM {ctx.source} CROSS JOIN {model}"),
-        ]
-        keep = [*ctx.keys, ctx.ok, xs, *carried]
+        row = [*ctx.keys, ctx.ok, f"{self._row_array(ctx)} AS {xs}"]
+        if "constant_alias" in p.raw:  # the arrays are named constants (see constants())
+            stages = [(ctx.prefix("walk0"),
+                       "SELECT " + ",\n  ".join([*row, *start]) + f"\nFROM {ctx.source}")]
+            keep = [*ctx.keys, ctx.ok, xs]
+        else:
+            model = ctx.prefix("model")
+            arrays = self._model_arrays(ctx)
+            carried = [name for name, _ in arrays]
+            stages = [
+                (model, "SELECT " + ",\n  ".join(f"{value} AS {name}" for name, value in arrays)),
+                (ctx.prefix("walk0"), "SELECT " + ",\n  ".join([*row, *carried, *start])
+                 + f"\nFROM {ctx.source} CROSS JOIN {model}"),
+            ]
+            keep = [*ctx.keys, ctx.ok, xs, *carried]
         for level in range(1, walked + 1):
             steps = [self._step(ctx, t) for t in range(len(forest.trees))]
             stages.append((ctx.prefix(f"walk{level}"),
                            "SELECT " + ",\n  ".join([*keep, *steps])
                            + f"\nFROM {stages[-1][0]}"))
         return stages
+
+    def constants(self, ctx: Context) -> list[tuple[str, str]]:
+        if "constant_alias" not in ctx.profile.raw or self._walked_levels(ctx.forest) == 0:
+            return []
+        return self._model_arrays(ctx)
+
+    def _model_arrays(self, ctx: Context) -> list[tuple[str, str]]:
+        """(name, array from text) for every tree's slot, bound and right-child arrays."""
+        p = ctx.profile
+        element = {"slot": p.raw["integer_type"], "bound": p.double_type,
+                   "right": p.raw["integer_type"]}
+        return [(self._name(ctx, what, t), self._array(ctx, values.tolist(), element[what]))
+                for t in range(len(ctx.forest.trees))
+                for what, values in self.node_columns(ctx, t).items()]
+
+    def node_columns(self, ctx: Context, t: int) -> dict[str, np.ndarray]:
+        """Tree t's slot, bound and right-child arrays, by 1-based pre-order position."""
+        tree, k = ctx.forest.trees[t], len(ctx.features)
+        order, position, _ = self._layout(ctx.forest, t)
+        leaf = tree.left[order] == LEAF
+        own = np.arange(1, len(order) + 1)
+        goes_left = tree.missing_left[order] & ctx.forest.accepts_missing
+        return {
+            "slot": np.where(leaf, 2 * k + 1, tree.feature[order] + 1 + np.where(goes_left, 0, k)),
+            "bound": np.where(leaf, 0.0, ctx.bounds[t][order]),
+            "right": np.where(leaf, own, position[np.where(leaf, 0, tree.right[order])] + 1),
+        }
+
+    def _row_array(self, ctx: Context) -> str:
+        """The row's features twice (missing as -inf, then as NaN) and one NaN slot."""
+        raw = ctx.profile.raw
+        low, nan = f"-{raw['infinity_literal']}", raw["nan_literal"]
+        row = ([f"COALESCE({x}, {low})" for x in ctx.features]
+               + [f"COALESCE({x}, {nan})" for x in ctx.features] + [nan])
+        return raw["array_literal"].format(items=", ".join(row))
 
     def _step(self, ctx: Context, t: int) -> str:
         n = self._name(ctx, "n", t)
@@ -233,5 +258,10 @@ class TextArrays(Strategy):
         size = 45 * forest.n_nodes * (3 + max(1, forest.n_outputs)) \
             + 150 * len(forest.trees) * (self._walked_levels(forest) + 2 ** self.top_levels)
         levels = min(self.top_levels, self.depth(forest))
+        # Each node array is one string literal to the parser: the parse tree grows with
+        # trees x levels, not with the nodes.
+        elements = 40 * forest.n_features + 20 * len(forest.trees) * (
+            self._walked_levels(forest) + 2 ** self.top_levels + 2 + forest.n_outputs)
         return Needs(size, case_depth=levels + 1, expression_depth=2 * levels + 8,
-                     select_columns=4 * len(forest.trees) + forest.n_features + 4)
+                     select_columns=4 * len(forest.trees) + forest.n_features + 4,
+                     ast_elements=elements)

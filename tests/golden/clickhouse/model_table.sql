@@ -1,3 +1,9 @@
+SET max_query_size = 1073741824;
+
+SET max_ast_elements = 10000000;
+
+SET max_expanded_ast_elements = 10000000;
+
 DROP TABLE IF EXISTS "__t2s_model_33dc85aced683fe4";
 
 CREATE TABLE "__t2s_model_33dc85aced683fe4" ("tree" Int64, "node" Int64, "feature" Int64, "bound" Nullable(Float64), "next_left" Int64, "next_right" Int64, "next_missing" Int64, "value_0" Nullable(Float64), "value_1" Nullable(Float64), "value_2" Nullable(Float64)) ENGINE = MergeTree ORDER BY tuple();
@@ -114,15 +120,15 @@ GROUP BY "__t2s_rid", "row id", "__t2s_ok"
 ),
 "__t2s_scores" AS (
 SELECT "row id",
-  CASE WHEN "__t2s_ok" = 1 THEN ("__t2s_v0_0"
+  ("__t2s_v0_0"
     + "__t2s_v1_0"
-    + "__t2s_v2_0") / 3.0e0 END AS "__t2s_p0",
-  CASE WHEN "__t2s_ok" = 1 THEN ("__t2s_v0_1"
+    + "__t2s_v2_0") / 3.0e0 * nullIf("__t2s_ok", 0) AS "__t2s_p0",
+  ("__t2s_v0_1"
     + "__t2s_v1_1"
-    + "__t2s_v2_1") / 3.0e0 END AS "__t2s_p1",
-  CASE WHEN "__t2s_ok" = 1 THEN ("__t2s_v0_2"
+    + "__t2s_v2_1") / 3.0e0 * nullIf("__t2s_ok", 0) AS "__t2s_p1",
+  ("__t2s_v0_2"
     + "__t2s_v1_2"
-    + "__t2s_v2_2") / 3.0e0 END AS "__t2s_p2"
+    + "__t2s_v2_2") / 3.0e0 * nullIf("__t2s_ok", 0) AS "__t2s_p2"
 FROM "__t2s_pivot"
 )
 SELECT "row id",
