@@ -98,8 +98,16 @@ def node_depths(tree: Tree) -> np.ndarray:
     return depth
 
 
-def _text(values: list) -> str:
-    return "[" + ",".join(map(repr, values)) + "]"
+def _text(values: np.ndarray) -> str:
+    """Array text: integers as they are, doubles as their shortest round-trip repr. +0.0,
+    the placeholder filling about half of every node array, is written as "0" without
+    formatting (float formatting is most of the compile time)."""
+    if values.dtype.kind != "f":
+        return "[" + ",".join(map(str, values.tolist())) + "]"
+    items = np.full(len(values), "0", dtype=object)
+    written = (values != 0) | np.signbit(values)
+    items[written] = list(map(float.__repr__, values[written].tolist()))
+    return "[" + ",".join(items.tolist()) + "]"
 
 
 class TextArrays(Strategy):
@@ -132,7 +140,7 @@ class TextArrays(Strategy):
     def _check(self, profile: Profile) -> None:
         require_keys(profile, self.required_keys, self.name)
 
-    def _array(self, ctx: Context, values: list, element: str) -> str:
+    def _array(self, ctx: Context, values: np.ndarray, element: str) -> str:
         return ctx.profile.raw["array_from_text"].format(
             text=ctx.profile.string(_text(values)), element=element)
 
@@ -190,7 +198,7 @@ class TextArrays(Strategy):
         p = ctx.profile
         element = {"slot": p.raw["integer_type"], "bound": p.double_type,
                    "right": p.raw["integer_type"]}
-        return [(self._name(ctx, what, t), self._array(ctx, values.tolist(), element[what]))
+        return [(self._name(ctx, what, t), self._array(ctx, values, element[what]))
                 for t in range(len(ctx.forest.trees))
                 for what, values in self.node_columns(ctx, t).items()]
 
@@ -240,8 +248,7 @@ class TextArrays(Strategy):
             # The literals would read back as exactly these numbers: write them directly.
             numbers = np.where(leaf_mask, leaf_value.values[order], 0.0)
             if np.isfinite(numbers).all():
-                return self._index(ctx, self._array(ctx, numbers.tolist(),
-                                                    ctx.profile.double_type), n)
+                return self._index(ctx, self._array(ctx, numbers, ctx.profile.double_type), n)
         items = [leaf_value(node) if leaf else "0"
                  for node, leaf in zip(order.tolist(), leaf_mask.tolist(), strict=True)]
         try:
@@ -251,7 +258,8 @@ class TextArrays(Strategy):
                 items=", ".join(items)), n)
         if not all(map(math.isfinite, values)):
             raise UserError("a leaf value is not finite", "check the model's leaf values")
-        return self._index(ctx, self._array(ctx, values, ctx.profile.double_type), n)
+        return self._index(ctx, self._array(ctx, np.array(values), ctx.profile.double_type),
+                           n)
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         self._check(profile)
