@@ -52,8 +52,8 @@ class Backend:
         self.write_scores(np.arange(len(X)), predict(X))
 
 
-def _columns(names: list[str]) -> str:
-    return ", ".join(f'"{n}"' for n in names)
+def _columns(names: list[str], quote: str = '"') -> str:
+    return ", ".join(f"{quote}{n}{quote}" for n in names)
 
 
 class DuckDBBackend(Backend):
@@ -232,6 +232,53 @@ class ClickHouseBackend(Backend):
         self.dir.cleanup()
 
 
+class SparkBackend(Backend):
+    """Spark SQL in local mode (`local[2]`, the machine's two cores), tables as parquet."""
+
+    dialect = "spark"
+
+    def __init__(self) -> None:
+        from tree2sql.engines_spark import local_session
+
+        self.dir = tempfile.TemporaryDirectory(prefix="t2s-bench-spark-")
+        self.spark = local_session()
+        self.spark.conf.set("spark.sql.execution.arrow.pyspark.enabled", "true")
+
+    def load(self, X, names):
+        import pandas as pd
+
+        frame = pd.DataFrame(X, columns=names)
+        frame.insert(0, "id", np.arange(len(X), dtype=np.int64))
+        path = Path(self.dir.name) / "rows.parquet"
+        frame.to_parquet(path)
+        self.execute(f"DROP TABLE IF EXISTS {TABLE}")
+        self.execute(f"CREATE TABLE {TABLE} USING parquet AS SELECT * FROM parquet.`{path}`")
+
+    def execute(self, sql):
+        self.spark.sql(sql).collect()
+
+    def create_as(self, sql):
+        self.execute(f"CREATE TABLE {SCORED} USING parquet AS {sql}")
+
+    def fetch_features(self, names):
+        frame = self.spark.sql(f"SELECT {_columns(names, '`')} FROM {TABLE} ORDER BY id"
+                               ).toPandas()
+        return frame.to_numpy(dtype=float)
+
+    def write_scores(self, ids, scores):
+        import pandas as pd
+
+        frame = pd.DataFrame(scores, columns=[f"p{k}" for k in range(scores.shape[1])])
+        frame.insert(0, "id", ids)
+        self.execute(f"DROP TABLE IF EXISTS {ROUNDTRIP}")
+        self.spark.createDataFrame(frame).write.format("parquet").saveAsTable(ROUNDTRIP)
+
+    def close(self):
+        for table in (TABLE, SCORED, ROUNDTRIP):
+            self.execute(f"DROP TABLE IF EXISTS {table}")
+        self.dir.cleanup()
+
+
 def open_backend(engine: str, pg_url: str | None) -> Backend:
     if engine == "duckdb":
         return DuckDBBackend()
@@ -243,4 +290,6 @@ def open_backend(engine: str, pg_url: str | None) -> Backend:
         return PostgresBackend(pg_url)
     if engine == "clickhouse":
         return ClickHouseBackend()
+    if engine == "spark":
+        return SparkBackend()
     raise RuntimeError(f"no benchmark backend for {engine!r}")

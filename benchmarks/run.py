@@ -25,7 +25,7 @@ if __package__ in (None, ""):  # run as `python benchmarks/run.py`
 
 from benchmarks.workload import Workload, trained_forest  # noqa: E402
 
-ENGINES = ("duckdb", "clickhouse", "postgres", "sqlite")
+ENGINES = ("duckdb", "clickhouse", "postgres", "sqlite", "spark")
 QUICK = {"rows": 100_000, "trees": 20, "grown_trees": 5, "train_rows": 5_000}
 
 

@@ -138,7 +138,7 @@ def test_other_limits_are_checked(key, needs):
 def test_inline_nodes_rule_of_thumb():
     profile = load_profile("postgres")
     forest = forest_of_depth(6)[1]
-    assert choose(forest, profile)[0].name == "nested_case"
+    assert choose(forest, profile)[0].name == "case_leaves"
     capped = replace(profile, raw={**profile.raw, "inline_nodes": forest.n_nodes - 1})
     assert choose(forest, capped)[0].name == "model_table"
 

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from engine_rows import Case, assert_bar, cases, open_engine, score
 from helpers import assert_agrees, check
-from sklearn.datasets import load_breast_cancer, load_iris
+from sklearn.datasets import load_breast_cancer, load_iris, load_wine
 from sklearn.ensemble import (
     GradientBoostingClassifier,
     HistGradientBoostingClassifier,
@@ -187,3 +187,22 @@ def test_array_shape_forced_where_the_profile_lacks_its_syntax(strategy: str) ->
     forest = cases()["iris"].forest
     with pytest.raises(UserError, match="sqlite profile has no"):
         compile_forest(forest, ScoringRequest("t", ("k",), strategy=strategy), "sqlite")
+
+
+def test_case_leaves_walks_each_tree_once_for_every_output() -> None:
+    """PostgreSQL's shape: one CASE per split whatever the number of classes (nested_case
+    writes each tree once per class), and the leaf stage fenced with OFFSET 0 so the
+    planner cannot copy the walks back into each output. Wine: Forina et al., UCI ML
+    repository (3 classes)."""
+    X, y = load_wine(return_X_y=True)
+    forest = ingest(RandomForestClassifier(n_estimators=5, max_depth=4, random_state=0)
+                    .fit(X, y))
+    splits = sum(int((~tree.is_leaf()).sum()) for tree in forest.trees)
+    request = ScoringRequest("t", ("k",))
+    leaves = compile_forest(forest, request, "postgres")
+    assert leaves.strategy == "case_leaves"
+    assert leaves.sql.count("CASE WHEN") == splits + 1 + forest.n_outputs + 1  # guard, label
+    assert "\nOFFSET 0\n" in leaves.sql
+    nested = compile_forest(forest, ScoringRequest("t", ("k",), strategy="nested_case"),
+                            "postgres")
+    assert nested.sql.count("CASE WHEN") == splits * forest.n_outputs + 1 + forest.n_outputs + 1

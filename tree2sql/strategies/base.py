@@ -103,6 +103,26 @@ def require_keys(profile: Profile, keys: tuple[str, ...], shape: str) -> None:
                         "use another --strategy, or add the keys to the dialect profile")
 
 
+def numbers_text(values: np.ndarray) -> str:
+    """Comma-separated numbers: integers as they are, doubles as their shortest round-trip
+    repr. +0.0, the placeholder filling about half of a node array, is written as "0"
+    without formatting (float formatting is most of the compile time)."""
+    if values.dtype.kind != "f":
+        return ",".join(map(str, values.tolist()))
+    items = np.full(len(values), "0", dtype=object)
+    written = (values != 0) | np.signbit(values)
+    items[written] = list(map(float.__repr__, values[written].tolist()))
+    return ",".join(items.tolist())
+
+
+def array_from_numbers(profile: Profile, values: np.ndarray, element: str) -> str:
+    """A constant array of `element`s parsed from one string literal (profile keys
+    `array_text`, default `[{items}]`, and `array_from_text`): one constant for the
+    engine to plan, however many numbers it holds."""
+    text = profile.raw.get("array_text", "[{items}]").format(items=numbers_text(values))
+    return profile.raw["array_from_text"].format(text=profile.string(text), element=element)
+
+
 def literal_bytes(profile: Profile) -> int:
     """Length of the longest double literal the profile writes (17 digits, 3-digit exponent)."""
     return len(profile.double(-2.2250738585072014e-308))

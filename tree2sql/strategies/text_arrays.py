@@ -48,6 +48,7 @@ from tree2sql.strategies.base import (
     LeafValue,
     Needs,
     Strategy,
+    array_from_numbers,
     require_keys,
 )
 from tree2sql.strategies.nested_case import nested_case, split_conditions
@@ -98,18 +99,6 @@ def node_depths(tree: Tree) -> np.ndarray:
     return depth
 
 
-def _text(values: np.ndarray) -> str:
-    """Array text: integers as they are, doubles as their shortest round-trip repr. +0.0,
-    the placeholder filling about half of every node array, is written as "0" without
-    formatting (float formatting is most of the compile time)."""
-    if values.dtype.kind != "f":
-        return "[" + ",".join(map(str, values.tolist())) + "]"
-    items = np.full(len(values), "0", dtype=object)
-    written = (values != 0) | np.signbit(values)
-    items[written] = list(map(float.__repr__, values[written].tolist()))
-    return "[" + ",".join(items.tolist()) + "]"
-
-
 class TextArrays(Strategy):
     name = "text_arrays"
     summary = ("per-tree node arrays parsed from text, one CTE stage per level "
@@ -141,8 +130,7 @@ class TextArrays(Strategy):
         require_keys(profile, self.required_keys, self.name)
 
     def _array(self, ctx: Context, values: np.ndarray, element: str) -> str:
-        return ctx.profile.raw["array_from_text"].format(
-            text=ctx.profile.string(_text(values)), element=element)
+        return array_from_numbers(ctx.profile, values, element)
 
     def _index(self, ctx: Context, array: str, index: str) -> str:
         return ctx.profile.raw["array_index"].format(array=array, index=index)
