@@ -8,10 +8,11 @@ next to it (IEEE 754 as numpy's float32 cast and nextafter implement it); signed
 subnormals, values beyond float32 range and infinities (refused by the library, so NULL
 scores are expected), integers beyond 2**24 (where float32 has gaps), NaN and SQL NULL.
 
-SQL and model are compared by tree2sql.verify.verify on DuckDB (nested_case and
-node_arrays), SQLite and PostgreSQL (nested_case, the strategies their profiles list
-first) with the library's own predictions as the reference: zero disagreements of any
-kind. Every verified row counts once per tree; the total is printed and must reach 10**7.
+SQL and model are compared by tree2sql.verify.verify on DuckDB (text_arrays, its profile's
+first, nested_case and node_arrays), SQLite (nested_case, its first) and PostgreSQL
+(case_leaves, its first, and nested_case) with the library's own predictions as the
+reference: zero disagreements of any kind. Every verified row counts once per tree; the
+total is printed and must reach 10**7.
 
 In scikit-learn 1.9 every dense forest takes NaN (checked empirically, also with
 monotonic_cst set); gradient boosting (GradientBoosting*) does not, so it stands in for
@@ -291,7 +292,7 @@ def _settings(examples: int):
 @pytest.fixture(scope="module")
 def duckdb_bench():
     engine = connect(None)
-    yield Bench("duckdb", engine, ("nested_case", "node_arrays"))
+    yield Bench("duckdb", engine, ("text_arrays", "nested_case", "node_arrays"))
     engine.close()
 
 
@@ -308,7 +309,7 @@ def postgres_bench(pg_url):
         engine = connect(pg_url)
     except Exception as exc:  # noqa: BLE001 - a server that is down is reported by need()
         need(False, f"PostgreSQL at {pg_url}: {exc}")
-    yield Bench("postgres", engine, ("nested_case",))
+    yield Bench("postgres", engine, ("case_leaves", "nested_case"))
     engine.close()
 
 

@@ -118,8 +118,11 @@ class TextArrays(Strategy):
             self._layouts[t] = (*preorder_positions(tree), node_depths(tree))
         return self._layouts[t]
 
+    def _depths(self, forest: Forest) -> list[int]:
+        return [int(self._layout(forest, t)[2].max()) for t in range(len(forest.trees))]
+
     def depth(self, forest: Forest) -> int:
-        return max(int(self._layout(forest, t)[2].max()) for t in range(len(forest.trees)))
+        return max(self._depths(forest))
 
     def _walked_levels(self, forest: Forest) -> int:
         return max(0, self.depth(forest) - self.top_levels)
@@ -169,8 +172,12 @@ class TextArrays(Strategy):
                  + f"\nFROM {ctx.source} CROSS JOIN {model}"),
             ]
             keep = [*ctx.keys, ctx.ok, xs, *carried]
+        # A tree stops stepping once every leaf of it is reached (its own depth), so a
+        # fully grown forest pays per tree for its own depth, not the deepest tree's.
         for level in range(1, walked + 1):
-            steps = [self._step(ctx, t) for t in range(len(forest.trees))]
+            steps = [self._step(ctx, t) if depth - self.top_levels >= level
+                     else self._name(ctx, "n", t)
+                     for t, depth in enumerate(self._depths(forest))]
             stages.append((ctx.prefix(f"walk{level}"),
                            "SELECT " + ",\n  ".join([*keep, *steps])
                            + f"\nFROM {stages[-1][0]}"))
