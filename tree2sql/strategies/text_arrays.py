@@ -110,6 +110,7 @@ class TextArrays(Strategy):
         self.top_levels = top_levels
         self._layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         self._quoted: dict[tuple[str, str], str] = {}
+        self._written: dict[str, str] = {}  # array name -> its SQL (arrays_at_each_use)
 
     def _layout(self, forest: Forest, t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(order, position, depth by node id) of tree t, computed once."""
@@ -158,7 +159,7 @@ class TextArrays(Strategy):
                      "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *start])
                      + f"\nFROM {ctx.source}")]
         row = [*ctx.keys, ctx.ok, f"{self._row_array(ctx)} AS {xs}"]
-        if "constant_alias" in p.raw:  # the arrays are named constants (see constants())
+        if "constant_alias" in p.raw or p.raw.get("arrays_at_each_use"):  # nothing carried
             stages = [(ctx.prefix("walk0"),
                        "SELECT " + ",\n  ".join([*row, *start]) + f"\nFROM {ctx.source}")]
             keep = [*ctx.keys, ctx.ok, xs]
@@ -218,11 +219,22 @@ class TextArrays(Strategy):
                + [f"COALESCE({x}, {nan})" for x in ctx.features] + [nan])
         return raw["array_literal"].format(items=", ".join(row))
 
+    def _array_at(self, ctx: Context, what: str, t: int) -> str:
+        """Tree t's `what` array where a step reads it: its name (a carried column or a
+        named constant), or with `arrays_at_each_use` the array itself, which the engine
+        folds to a constant once per use (Spark: nothing carried, no constant names)."""
+        if not ctx.profile.raw.get("arrays_at_each_use"):
+            return self._name(ctx, what, t)
+        if not self._written:
+            self._written = dict(self._model_arrays(ctx))
+        return self._written[self._name(ctx, what, t)]
+
     def _step(self, ctx: Context, t: int) -> str:
         n = self._name(ctx, "n", t)
-        value = self._index(ctx, ctx.prefix("xs"), self._index(ctx, self._name(ctx, "slot", t), n))
-        bound = self._index(ctx, self._name(ctx, "bound", t), n)
-        right = self._index(ctx, self._name(ctx, "right", t), n)
+        slot = self._array_at(ctx, "slot", t)
+        value = self._index(ctx, ctx.prefix("xs"), self._index(ctx, slot, n))
+        bound = self._index(ctx, self._array_at(ctx, "bound", t), n)
+        right = self._index(ctx, self._array_at(ctx, "right", t), n)
         return f"CASE WHEN {value} <= {bound} THEN {n} + 1 ELSE {right} END AS {n}"
 
     def _start(self, ctx: Context, t: int) -> str:
