@@ -30,7 +30,8 @@ positions root first (pre-order), so a left child is the next id:
 
 Profile keys: `array_from_text` over {text} (a quoted string literal) and {element},
 `array_literal` over {items}, `array_index` over {array} and {index}, `integer_type`,
-`nan_literal` and `infinity_literal`; optionally `constant_alias` over {value} and {name}.
+`nan_literal` and `infinity_literal`; optionally `constant_alias` over {value} and {name},
+or `arrays_at_each_use` (Spark: each array written where a step reads it, nothing carried).
 """
 
 from __future__ import annotations
@@ -104,8 +105,6 @@ class TextArrays(Strategy):
     summary = ("per-tree node arrays parsed from text, one CTE stage per level "
                "(vectorized engines)")
 
-    required_keys = REQUIRED_KEYS
-
     def __init__(self, top_levels: int = TOP_LEVELS) -> None:
         self.top_levels = top_levels
         self._layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
@@ -131,7 +130,7 @@ class TextArrays(Strategy):
     # -- SQL pieces -----------------------------------------------------------------------
 
     def _check(self, profile: Profile) -> None:
-        require_keys(profile, self.required_keys, self.name)
+        require_keys(profile, REQUIRED_KEYS, self.name)
 
     def _array(self, ctx: Context, values: np.ndarray, element: str) -> str:
         return array_from_numbers(ctx.profile, values, element)
