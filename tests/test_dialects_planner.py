@@ -160,3 +160,17 @@ def test_estimates_bound_the_real_statement():
                        .sql.encode())
             estimate = strategy.needs(forest, profile).statement_bytes
             assert real <= estimate <= 4 * real, (dialect, name, real, estimate)
+
+
+def test_clickhouse_passes_over_text_arrays_when_planning_would_parse_too_much():
+    """ClickHouse parses a named constant's text at every reference, so planning grows with
+    trees x levels x nodes; past the profile's constant_elements (measured: 24.9 million
+    elements ran out of memory) the planner takes the next shape instead."""
+    profile = load_profile("clickhouse")
+    forest = forest_of_depth(6)[1]
+    strategy, _ = choose(forest, profile)
+    parsed = strategy.needs(forest, profile).constant_elements
+    assert strategy.name == "text_arrays" and parsed > 0
+    capped = replace(profile, limits={**profile.limits, "constant_elements": parsed - 1})
+    strategy, reason = choose(forest, capped)
+    assert strategy.name == "nested_case" and "constant_elements" in reason

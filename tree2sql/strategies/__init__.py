@@ -45,6 +45,8 @@ def limit_problem(needs: Needs, forest: Forest, profile: Profile) -> str | None:
          "select list of about {need} columns"),
         ("ast_elements", needs.ast_elements or int(needs.statement_bytes * AST_ELEMENTS_PER_BYTE),
          "about {need} parse-tree elements"),
+        ("constant_elements", needs.constant_elements,
+         "about {need} array elements parsed while planning"),
     ]
     for key, need, what in checks:
         limit = lim(key)

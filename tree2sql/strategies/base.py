@@ -53,8 +53,9 @@ class Needs:
 
     Figures are estimates meant as upper bounds: `case_depth` and `expression_depth` of
     the deepest expression the strategy writes (the compiler adds its own), the widest
-    select list, whether the model's nodes are written into the statement itself, and the
-    parse tree's elements (None: estimated from the statement bytes).
+    select list, whether the model's nodes are written into the statement itself, the
+    parse tree's elements (None: estimated from the statement bytes), and the elements of
+    constant arrays the engine parses while planning (once per reference).
     """
 
     statement_bytes: int
@@ -63,6 +64,7 @@ class Needs:
     select_columns: int = 0
     inline: bool = True
     ast_elements: int | None = None
+    constant_elements: int = 0  # array elements the engine reads while planning
 
 
 @dataclass

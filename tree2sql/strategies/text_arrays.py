@@ -276,6 +276,12 @@ class TextArrays(Strategy):
         # trees x levels, not with the nodes.
         elements = 40 * forest.n_features + 20 * len(forest.trees) * (
             self._walked_levels(forest) + 2 ** self.top_levels + 2 + forest.n_outputs)
+        # Named constants are parsed again at each reference: three arrays per step.
+        parsed = 0
+        if "constant_alias" in profile.raw:
+            parsed = sum(3 * max(0, depth - self.top_levels) * tree.n_nodes
+                         for depth, tree in zip(self._depths(forest), forest.trees,
+                                                strict=True))
         return Needs(size, case_depth=levels + 1, expression_depth=2 * levels + 8,
                      select_columns=4 * len(forest.trees) + forest.n_features + 4,
-                     ast_elements=elements)
+                     ast_elements=elements, constant_elements=parsed)
