@@ -100,6 +100,12 @@ def node_depths(tree: Tree) -> np.ndarray:
     return depth
 
 
+def _carried(profile: Profile) -> bool:
+    """The node arrays come in by a cross join and ride along as columns, unless the
+    profile names them as constants or writes them where each step reads them."""
+    return "constant_alias" not in profile.raw and not profile.raw.get("arrays_at_each_use")
+
+
 class TextArrays(Strategy):
     name = "text_arrays"
     summary = ("per-tree node arrays parsed from text, one CTE stage per level "
@@ -158,7 +164,7 @@ class TextArrays(Strategy):
                      "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *start])
                      + f"\nFROM {ctx.source}")]
         row = [*ctx.keys, ctx.ok, f"{self._row_array(ctx)} AS {xs}"]
-        if "constant_alias" in p.raw or p.raw.get("arrays_at_each_use"):  # nothing carried
+        if not _carried(p):
             stages = [(ctx.prefix("walk0"),
                        "SELECT " + ",\n  ".join([*row, *start]) + f"\nFROM {ctx.source}")]
             keep = [*ctx.keys, ctx.ok, xs]
@@ -174,10 +180,10 @@ class TextArrays(Strategy):
             keep = [*ctx.keys, ctx.ok, xs, *carried]
         # A tree stops stepping once every leaf of it is reached (its own depth), so a
         # fully grown forest pays per tree for its own depth, not the deepest tree's.
+        depths = self._depths(forest)
         for level in range(1, walked + 1):
             steps = [self._step(ctx, t) if depth - self.top_levels >= level
-                     else self._name(ctx, "n", t)
-                     for t, depth in enumerate(self._depths(forest))]
+                     else self._name(ctx, "n", t) for t, depth in enumerate(depths)]
             stages.append((ctx.prefix(f"walk{level}"),
                            "SELECT " + ",\n  ".join([*keep, *steps])
                            + f"\nFROM {stages[-1][0]}"))
@@ -195,9 +201,9 @@ class TextArrays(Strategy):
                    "right": p.raw["integer_type"]}
         return [(self._name(ctx, what, t), self._array(ctx, values, element[what]))
                 for t in range(len(ctx.forest.trees))
-                for what, values in self.node_columns(ctx, t).items()]
+                for what, values in self._node_columns(ctx, t).items()]
 
-    def node_columns(self, ctx: Context, t: int) -> dict[str, np.ndarray]:
+    def _node_columns(self, ctx: Context, t: int) -> dict[str, np.ndarray]:
         """Tree t's slot, bound and right-child arrays, by 1-based pre-order position."""
         tree, k = ctx.forest.trees[t], len(ctx.features)
         order, position, _ = self._layout(ctx.forest, t)
