@@ -26,7 +26,6 @@ from tree2sql.strategies.base import LeafLiterals
 
 INTERNAL_PREFIX = "__t2s_"
 PLUS = "\n    + "
-TERMS_PER_STAGE = 100  # trees summed per CTE stage; see _partial_sum_stages
 # EXP's argument is kept within +-EXP_LIMIT: exp(700) ~ 1e304 stays finite and exp(-700) ~
 # 1e-304 stays a normal double (no overflow/underflow errors, as PostgreSQL raises); past it
 # a probability is within 1e-300 of 0 or 1.
@@ -183,7 +182,8 @@ class _QueryBuilder:
         ctx = self._context()
         ctes = [*self._input_stages(), *self.strategy.stages(ctx)]
         sums = self._sums(ctx, progress)
-        ctes += self._partial_sum_stages(sums, ctes[-1][0])
+        sum_stages = self._partial_sum_stages(sums, ctes[-1][0])
+        ctes += sum_stages
         explain = ReasonSql(self.forest, p, self.internal, self.request.reasons) \
             if reasons else None
         if explain:
@@ -216,6 +216,9 @@ class _QueryBuilder:
         # evaluate every tree sum once per reference: measured 3x slower on wine, 3 classes.
         last, fenced = self.internal("scores"), {self.internal("scores"), self.internal("raw")}
         fenced |= {self.internal(name) for name in p.raw.get("fenced_stages", ())}
+        fenced |= self.strategy.fenced_stages(ctx)
+        if "sums" in p.raw.get("fenced_stages", ()):
+            fenced |= {name for name, _ in sum_stages}
         if explain:
             ctes += explain.stages(last, lambda per_class: self._argmax("p", per_class))
             fenced |= set(explain.fenced)
@@ -229,7 +232,7 @@ class _QueryBuilder:
         ctes = [*self._input_stages(), *self.strategy.stages(ctx)]
         leaves = [f"{self.strategy.tree_term(ctx, t, str)} AS {self.internal(f'leaf{t}')}"
                   for t in range(len(self.forest.trees))]
-        return (f"WITH {self._with_clause(ctx, ctes)}\n"
+        return (f"WITH {self._with_clause(ctx, ctes, self.strategy.fenced_stages(ctx))}\n"
                 f"SELECT {self._select_list(self.keys + leaves)}\nFROM {ctes[-1][0]}")
 
     def _with_clause(self, ctx: Context, ctes: list[tuple[str, str]],
@@ -261,16 +264,18 @@ class _QueryBuilder:
     def _input_body(self) -> str:
         p = self.profile
         inputs = self.features[:self.forest.n_features]
-        if self.forest.inputs is None:
+        renderer = None if self.forest.inputs is None else \
+            InputRenderer(self.forest.inputs, p, self.feature_columns)
+        if renderer is None:
             values = [p.missing_as_null(p.cast_double(p.quote(col)))
                       for col in self.feature_columns]
         else:  # a pipeline: preprocessing computed from the raw columns
-            renderer = InputRenderer(self.forest.inputs, p, self.feature_columns)
             values = renderer.features()
-            refused = renderer.refused()
-            if refused:
-                values.append(f"CASE WHEN {refused} THEN 1 ELSE 0 END")
-                inputs = [*inputs, self.internal("refused")]
+        stored = p.raw.get("input_value", "{x}")  # see dialects/README.md
+        values = [stored.format(x=value) for value in values]
+        if renderer is not None and (refused := renderer.refused()):
+            values.append(f"CASE WHEN {refused} THEN 1 ELSE 0 END")
+            inputs = [*inputs, self.internal("refused")]
         cast = [f"{value} AS {alias}" for value, alias in zip(values, inputs, strict=True)]
         return (f"SELECT {self._select_list(self.keys + cast)}\n"
                 f"FROM {p.qualified(self.request.table)}")
@@ -320,24 +325,25 @@ class _QueryBuilder:
 
     def _partial_sum_stages(self, terms: list[list[str]], source: str,
                             tag: str = "") -> list[tuple[str, str]]:
-        """Sum left to right in tree order, `TERMS_PER_STAGE` trees per CTE stage.
+        """Sum left to right in tree order, the profile's `trees_per_stage` per CTE stage.
 
         One long `a + b + c ...` is as deep as it is long, and engines cap expression
-        depth (DuckDB: 1000). Carrying a running sum from stage to stage keeps the exact
-        left-to-right order of the library's accumulation while bounding the depth.
+        depth (DuckDB: 1000); a row engine also runs faster when each fenced stage's code
+        stays small (SQLite, see its profile). Carrying a running sum from stage to stage
+        keeps the exact left-to-right order of the library's accumulation.
         On return each `terms[k]` is replaced by [final sum expression].
         """
         stages: list[tuple[str, str]] = []
-        n_trees = len(terms[0])
-        if n_trees <= TERMS_PER_STAGE:
+        n_trees, per_stage = len(terms[0]), self.profile.trees_per_stage
+        if n_trees <= per_stage:
             for column in terms:
                 column[:] = [PLUS.join(column)]
             return stages
         running: list[str | None] = [None] * len(terms)
-        for stage, start in enumerate(range(0, n_trees, TERMS_PER_STAGE)):
+        for stage, start in enumerate(range(0, n_trees, per_stage)):
             items = []
             for k, column in enumerate(terms):
-                chunk = column[start:start + TERMS_PER_STAGE]
+                chunk = column[start:start + per_stage]
                 if running[k] is not None:
                     chunk = [running[k], *chunk]
                 name = self.internal(f"{tag}s{stage}_{k}")

@@ -19,6 +19,10 @@ from tree2sql.errors import UserError
 from tree2sql.exact import SHORTEST, float_text
 from tree2sql.resources import data_dir
 
+# Default trees summed per CTE stage: long `a + b + c ...` chains are as deep as they are
+# long, and engines cap expression depth (DuckDB: 1000).
+TREES_PER_STAGE = 100
+
 
 @dataclass(frozen=True)
 class Profile:
@@ -60,8 +64,8 @@ class Profile:
 
     def double(self, value: float) -> str:
         """A double literal; `literal_style` in the profile picks how (see tree2sql.exact)."""
-        style = self.raw.get("literal_style", SHORTEST)
-        return self.double_literal.format(text=float_text(value, style))
+        return _double(float(value), self.raw.get("literal_style", SHORTEST),
+                       self.raw.get("arithmetic_literal", "{text}"), self.double_literal)
 
     @property
     def plain_doubles(self) -> bool:
@@ -71,13 +75,24 @@ class Profile:
                 and self.raw.get("literal_style", SHORTEST) == SHORTEST)
 
     def doubles(self, values: np.ndarray) -> list[str]:
-        """`double` of each value, in bulk: one repr per value on the common plain path;
-        other literal styles, and non-finite values (to raise as `double` does), go
-        through `double` one by one."""
+        """`double` of each value, in bulk: one repr per value where the style is the
+        shortest text; other literal styles, and non-finite values (to raise as `double`
+        does), go through `double` one by one."""
         floats = np.asarray(values, dtype=np.float64).ravel()
-        if not self.plain_doubles or not np.isfinite(floats).all():
+        if (self.raw.get("literal_style", SHORTEST) != SHORTEST
+                or not np.isfinite(floats).all()):
             return [self.double(v) for v in floats.tolist()]
-        return [text if "e" in text else text + "e0" for text in map(repr, floats.tolist())]
+        texts = [text if "e" in text else text + "e0" for text in map(repr, floats.tolist())]
+        if self.double_literal == "{text}":
+            return texts
+        before, after = self.double_literal.split("{text}")
+        return [before + text + after for text in texts]
+
+    @property
+    def trees_per_stage(self) -> int:
+        """Trees summed per CTE stage (profile key `trees_per_stage`; see the compiler's
+        `_partial_sum_stages`)."""
+        return int(self.raw.get("trees_per_stage", TREES_PER_STAGE))
 
     def cast_double(self, sql: str) -> str:
         return f"CAST({sql} AS {self.double_type})"
@@ -133,6 +148,25 @@ def _string_quotes(dialect: str) -> tuple[str, str]:
     """What the dialect writes before and after a plain string literal's text."""
     before, _, after = _string(dialect, _QUOTE_PROBE).partition(_QUOTE_PROBE)
     return before, after
+
+
+def _double(value: float, style: str, arithmetic: str, template: str) -> str:
+    """`Profile.double`, remembered: leaf values repeat across trees (0, 1, small
+    fractions), and some literal styles cost microseconds each. Zeros skip the cache,
+    which would not tell -0.0 from 0.0."""
+    if value == 0.0:
+        return _double_text(value, style, arithmetic, template)
+    return _remembered_double_text(value, style, arithmetic, template)
+
+
+def _double_text(value: float, style: str, arithmetic: str, template: str) -> str:
+    text = float_text(value, style)
+    if text.startswith("("):  # an arithmetic form, dressed as the profile says
+        text = arithmetic.format(text=text)
+    return template.format(text=text)
+
+
+_remembered_double_text = functools.lru_cache(maxsize=1 << 16)(_double_text)
 
 
 def _no_nul(text: str) -> str:

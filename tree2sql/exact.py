@@ -9,7 +9,6 @@ round to nearest, ties to even, as numpy's float32 cast implements it).
 from __future__ import annotations
 
 import math
-from decimal import Decimal
 
 import numpy as np
 
@@ -96,9 +95,8 @@ def exact_arithmetic_text(x: float) -> str:
     """
     if x == 0.0 or (x.is_integer() and abs(x) < EXACT_INTEGER):
         return repr(x) + "e0"  # integral: read exactly, sign of zero kept
-    sign, digits, exponent = Decimal(repr(x)).normalize().as_tuple()
-    significand = int("".join(map(str, digits)))
-    text = f"{'-' if sign else ''}{significand}"
+    negative, significand, exponent = shortest_digits(x)
+    text = f"{'-' if negative else ''}{significand}"
     if significand < EXACT_INTEGER and 0 < -exponent <= POWER_OF_TEN_EXACT:
         return f"({text} / 1e{-exponent})"
     if significand < EXACT_INTEGER and 0 < exponent <= POWER_OF_TEN_EXACT:
@@ -111,3 +109,16 @@ def exact_arithmetic_text(x: float) -> str:
     for done in range(0, abs(shift), POWER_OF_TWO_STEP):
         steps.append(str(2 ** min(POWER_OF_TWO_STEP, abs(shift) - done)))
     return "(" + op.join(steps) + ")"
+
+
+def shortest_digits(x: float) -> tuple[bool, int, int]:
+    """Nonzero x's shortest round-trip digits as (negative, S, E), x = -+S * 10**E with S
+    free of trailing zeros (what Decimal(repr(x)).normalize() gives, read from the text)."""
+    text = repr(x)
+    negative = text[0] == "-"
+    mantissa, _, power = text.lstrip("-").partition("e")
+    whole, _, fraction = mantissa.partition(".")
+    digits = (whole + fraction).lstrip("0")
+    significand = digits.rstrip("0")
+    exponent = int(power or 0) - len(fraction) + len(digits) - len(significand)
+    return negative, int(significand), exponent

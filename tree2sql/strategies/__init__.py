@@ -3,7 +3,7 @@
 The planner tries the shapes the profile lists, in its order, and takes the first whose
 estimated demands fit every limit the profile states (see dialects/README.md). The
 compiler adds a little of its own to each demand: one CASE around the final sum, and a
-chain of up to `TERMS_PER_STAGE` additions per sum stage.
+chain of up to the profile's `trees_per_stage` additions per sum stage.
 """
 
 from __future__ import annotations
@@ -31,15 +31,13 @@ __all__ = ["STRATEGIES", "Context", "Needs", "Strategy", "choose", "limit_proble
 
 def limit_problem(needs: Needs, forest: Forest, profile: Profile) -> str | None:
     """The first profile limit the shape would break, as a sentence; None when it fits."""
-    from tree2sql.compiler import TERMS_PER_STAGE
-
-    lim = profile.limit
-    sum_stages = math.ceil(len(forest.trees) / TERMS_PER_STAGE)
+    lim, per_stage = profile.limit, profile.trees_per_stage
+    sum_stages = math.ceil(len(forest.trees) / per_stage)
     checks = [
         ("statement_bytes", needs.statement_bytes, "statement of about {need} bytes"),
         ("case_depth", needs.case_depth + 1, "CASE nested {need} levels deep"),
         ("expression_depth",
-         needs.expression_depth + min(len(forest.trees), TERMS_PER_STAGE) + 4,
+         needs.expression_depth + min(len(forest.trees), per_stage) + 4,
          "expression about {need} levels deep"),
         ("select_columns", needs.select_columns + forest.n_outputs * sum_stages,
          "select list of about {need} columns"),

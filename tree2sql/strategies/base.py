@@ -145,6 +145,12 @@ class Strategy(ABC):
         """Extra CTEs (name, SELECT body) after the input; the last one becomes the source."""
         return []
 
+    def fenced_stages(self, ctx: Context) -> set[str]:
+        """Names of its stages that later SQL reads a column of many times: the compiler
+        fences them where the profile can (`cte_materialized`), so that an engine that
+        inlines CTEs does not copy the column's expression into every reference."""
+        return set()
+
     def constants(self, ctx: Context) -> list[tuple[str, str]]:
         """Named constant expressions (name, SQL) the statement's WITH clause defines ahead
         of its CTEs, for profiles with `constant_alias`; stages and terms use the names."""

@@ -26,9 +26,17 @@ ALWAYS_LEFT = "left"
 ALWAYS_RIGHT = "right"
 
 
+class SendsRight(str):
+    """A condition that sends the row right, written where missing values go left:
+    `CASE WHEN x > b THEN right ELSE left END` sends NULL to the ELSE branch (a NULL
+    condition is not true; SQL standard, three-valued logic), so such a split needs no
+    `OR x IS NULL` test of its own."""
+
+
 def split_conditions(ctx: Context, tree_index: int,
                      nodes: list[int] | None = None) -> list[str | None]:
-    """Per node: the SQL condition sending a row left, or ALWAYS_LEFT / ALWAYS_RIGHT.
+    """Per node: the SQL condition sending a row left (a `SendsRight` one sends it right),
+    or ALWAYS_LEFT / ALWAYS_RIGHT.
 
     Rows with a missing value follow the model's missing direction; where the model
     cannot take missing values the compiler has already given such rows NULL scores.
@@ -53,7 +61,7 @@ def split_conditions(ctx: Context, tree_index: int,
         elif b == -math.inf:
             conditions[node] = f"{x} IS NULL" if missing_left else ALWAYS_RIGHT
         elif missing_left:
-            conditions[node] = f"({x} <= {next(literals)} OR {x} IS NULL)"
+            conditions[node] = SendsRight(f"{x} > {next(literals)}")
         else:
             conditions[node] = f"{x} <= {next(literals)}"
     return conditions
@@ -100,7 +108,10 @@ class CaseText:
                 push((right[node], level + 1))
             else:
                 pieces.append(f"CASE WHEN {condition} THEN ")
-                extend((" END", (right[node], level + 1), " ELSE ", (left[node], level + 1)))
+                then, other = left[node], right[node]
+                if condition.__class__ is SendsRight:
+                    then, other = other, then
+                extend((" END", (other, level + 1), " ELSE ", (then, level + 1)))
         self.pieces, self.holes = pieces, holes
 
     def render(self, leaf_value: LeafValue) -> str:
