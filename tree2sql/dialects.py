@@ -7,6 +7,7 @@ through sqlglot so that hostile names cannot change a statement.
 from __future__ import annotations
 
 import functools
+import math
 import re
 import tomllib
 from dataclasses import dataclass, field
@@ -152,10 +153,10 @@ def _string_quotes(dialect: str) -> tuple[str, str]:
 
 def _double(value: float, style: str, arithmetic: str, template: str) -> str:
     """`Profile.double`, remembered: leaf values repeat across trees (0, 1, small
-    fractions), and some literal styles cost microseconds each. Zeros skip the cache,
-    which would not tell -0.0 from 0.0."""
+    fractions), and some literal styles cost microseconds each. Zeros are remembered by
+    their sign, which a cache keyed by value would not tell apart (-0.0 == 0.0)."""
     if value == 0.0:
-        return _double_text(value, style, arithmetic, template)
+        return _remembered_zero(math.copysign(1.0, value) < 0, style, arithmetic, template)
     return _remembered_double_text(value, style, arithmetic, template)
 
 
@@ -167,6 +168,11 @@ def _double_text(value: float, style: str, arithmetic: str, template: str) -> st
 
 
 _remembered_double_text = functools.lru_cache(maxsize=1 << 16)(_double_text)
+
+
+@functools.lru_cache(maxsize=16)
+def _remembered_zero(negative: bool, style: str, arithmetic: str, template: str) -> str:
+    return _double_text(-0.0 if negative else 0.0, style, arithmetic, template)
 
 
 def _no_nul(text: str) -> str:

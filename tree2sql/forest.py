@@ -122,13 +122,13 @@ class Tree:
         """Node ids root first, left subtree before right (any node numbering)."""
         order: list[int] = []
         stack = [0]
-        left, right = self.left, self.right
+        left, right = self.left.tolist(), self.right.tolist()
         while stack:
             node = stack.pop()
             order.append(node)
             if left[node] != LEAF:
-                stack.append(int(right[node]))
-                stack.append(int(left[node]))
+                stack.append(right[node])
+                stack.append(left[node])
         return order
 
     def parents(self) -> np.ndarray:

@@ -8,12 +8,17 @@ every tree from the node it reached at depth s*k down at most k more levels:
                WHEN 6 THEN ... ELSE n END
 
 so no expression nests deeper than k + 1. A tree that reached a leaf keeps its node id
-(the ELSE branch). The last term maps a tree's leaf id to its value by a binary search
-over the leaf ids, at most k levels deep (`node_lookup`).
-Node ids are the model's own, so the same SQL can report the leaf each row reached.
+(the ELSE branch). The last term maps a tree's leaf id to its value. Where the profile can
+fence stages, both lookups are binary searches over the ids (`node_lookup`), and a stage
+walks as many fewer levels as its search is deep; elsewhere they list the ids flat. Node
+ids are the model's own, so the same SQL can report the leaf each row reached.
 """
 
 from __future__ import annotations
+
+import functools
+
+import numpy as np
 
 from tree2sql.dialects import Profile
 from tree2sql.forest import LEAF, Forest, Tree
@@ -30,6 +35,10 @@ from tree2sql.strategies.nested_case import nested_case, split_conditions
 DEFAULT_LEVELS = 8  # per stage, when a profile states neither a CASE limit nor stage_levels
 EXPRESSION_DEPTH_PER_LEVEL = 2  # a CASE level costs up to two levels of expression depth
 FLAT_IDS = 4  # ids a lookup lists flat rather than halving again
+# CASE levels of a stage's frontier search: each level taken from the walk can add a stage,
+# and a stage copies every row. SQLite, 20 fully grown trees (frontier ~160 ids), 50k rows:
+# flat 3.5-3.7 s, 2 levels 3.0 s, 3 levels 2.8-2.9 s, 4 levels 3.0 s, 7 levels 4.0 s.
+DISPATCH_LEVELS = 3
 
 
 def levels_per_stage(profile: Profile) -> int:
@@ -57,27 +66,46 @@ def node_depths(tree: Tree) -> list[int]:
     return depth
 
 
-def render_levels(tree: Tree, conditions: list[str | None], root: int, levels: int) -> str:
+def render_levels(tree: Tree, conditions: list[str | None], root: int, levels: int,
+                  children: tuple[list[int], list[int]] | None = None) -> str:
     """Nested CASE from `root` down `levels` tree levels, giving the node id reached."""
-    return nested_case(tree, conditions, str, root, levels)
+    return nested_case(tree, conditions, str, root, levels, children)
 
 
-def node_lookup(node: str, ids: list[int], value: LeafValue, levels: int) -> str:
+def node_lookup(node: str, ids: list[int], value: LeafValue, levels: int,
+                otherwise: str | None = None) -> str:
     """`value(id)` for the id held in column `node` (ids ascending): a binary search at most
-    `levels` CASE levels deep whose last level lists its few ids flat.
+    `levels` CASE levels deep whose last level lists its few ids flat; `otherwise` for an
+    id not listed (None: every row holds one of `ids`).
 
     A flat `CASE n WHEN ...` over a fully grown tree's thousand leaves costs a row
     engine one comparison per leaf passed (SQLite: 58 us per tree and row, measured on
     trees of 3,000 nodes); the search costs about log2(leaves) comparisons.
     """
-    if len(ids) == 1:
+    if len(ids) == 1 and otherwise is None:
         return value(ids[0])
     if levels <= 1 or len(ids) <= FLAT_IDS:
-        return f"CASE {node} " + " ".join(f"WHEN {n} THEN {value(n)}" for n in ids) + " END"
+        branches = " ".join(f"WHEN {n} THEN {value(n)}" for n in ids)
+        return f"CASE {node} {branches}{'' if otherwise is None else f' ELSE {otherwise}'} END"
     half = len(ids) // 2
     return (f"CASE WHEN {node} < {ids[half]} THEN "
-            f"{node_lookup(node, ids[:half], value, levels - 1)} "
-            f"ELSE {node_lookup(node, ids[half:], value, levels - 1)} END")
+            f"{node_lookup(node, ids[:half], value, levels - 1, otherwise)} "
+            f"ELSE {node_lookup(node, ids[half:], value, levels - 1, otherwise)} END")
+
+
+def lookup_levels(count: int) -> int:
+    """CASE levels `node_lookup` needs to bring `count` ids down to flat lists."""
+    levels = 1
+    while count > FLAT_IDS:
+        count, levels = count - count // 2, levels + 1
+    return levels
+
+
+def searches(profile: Profile) -> bool:
+    """Lookups may search: a search reads the node id once per level, and only fenced
+    stages (`cte_materialized`) keep an engine that inlines CTEs from copying the id's
+    whole expression into each read."""
+    return bool(profile.raw.get("cte_materialized"))
 
 
 class DepthStaged(Strategy):
@@ -86,6 +114,8 @@ class DepthStaged(Strategy):
 
     def __init__(self) -> None:
         self._conditions: dict[int, list[str | None]] = {}
+        self._depths: list[list[int]] = []
+        self._stages: list[tuple[int, int, int]] | None = None
 
     def _split(self, ctx: Context, t: int) -> list[str | None]:
         if t not in self._conditions:
@@ -95,22 +125,48 @@ class DepthStaged(Strategy):
     def _node(self, ctx: Context, t: int) -> str:
         return ctx.prefix(f"n{t}")
 
+    def _plan(self, ctx: Context) -> list[tuple[int, int, int]]:
+        """Per stage: (start depth, tree levels it walks, CASE levels of its dispatch).
+
+        A stage nests k + 1 CASE levels: the first walks k from the roots; each later one
+        finds a row's node among the frontier (one flat `CASE n WHEN` level, or a search of
+        up to DISPATCH_LEVELS levels where lookups may search) and walks the levels left.
+        """
+        if self._stages is None:
+            k = levels_per_stage(ctx.profile)
+            depths = [node_depths(tree) for tree in ctx.forest.trees]
+            inner = [tree.left != LEAF for tree in ctx.forest.trees]
+            deepest = max(max(d) for d in depths)
+            plan, start = [(0, k, 0)], k
+            while start < deepest:
+                dispatch = 1
+                if searches(ctx.profile):
+                    widest = max(int(((np.asarray(d) == start) & i).sum())
+                                 for d, i in zip(depths, inner, strict=True))
+                    dispatch = min(lookup_levels(widest), DISPATCH_LEVELS, k)
+                plan.append((start, k + 1 - dispatch, dispatch))
+                start += k + 1 - dispatch
+            self._depths, self._stages = depths, plan if deepest else []
+        return self._stages
+
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
-        forest = ctx.forest
-        k = levels_per_stage(ctx.profile)
-        depths = [node_depths(tree) for tree in forest.trees]
-        deepest = [max(d) for d in depths]
+        plan = self._plan(ctx)
         carried = [*ctx.keys, ctx.ok, *ctx.features]
         stages: list[tuple[str, str]] = []
         source = ctx.source
-        for stage, start in enumerate(range(0, max(deepest), k)):
+        for start, levels, dispatch in plan:
             columns = []
-            for t, tree in enumerate(forest.trees):
+            for t, tree in enumerate(ctx.forest.trees):
                 node = self._node(ctx, t)
-                if stage == 0:
-                    step = render_levels(tree, self._split(ctx, t), 0, k)
-                elif deepest[t] > start:
-                    step = self._stage_step(ctx, t, depths[t], start, k, node)
+                if start == 0:
+                    step = render_levels(tree, self._split(ctx, t), 0, levels)
+                elif max(self._depths[t]) > start:
+                    left, right = tree.left.tolist(), tree.right.tolist()
+                    frontier = [n for n, d in enumerate(self._depths[t])
+                                if d == start and left[n] != LEAF]
+                    walk = functools.partial(render_levels, tree, self._split(ctx, t),
+                                             levels=levels, children=(left, right))
+                    step = node_lookup(node, frontier, walk, dispatch, otherwise=node)
                 else:
                     step = node
                 columns.append(f"{step} AS {node}")
@@ -120,35 +176,21 @@ class DepthStaged(Strategy):
             source = name
         return stages
 
-    def _stage_step(self, ctx: Context, t: int, depth: list[int], start: int, k: int,
-                    node: str) -> str:
-        tree = ctx.forest.trees[t]
-        conditions = self._split(ctx, t)
-        frontier = [n for n in range(tree.n_nodes)
-                    if depth[n] == start and tree.left[n] != LEAF]
-        branches = " ".join(f"WHEN {n} THEN {render_levels(tree, conditions, n, k)}"
-                            for n in frontier)
-        return f"CASE {node} {branches} ELSE {node} END"
-
     def fenced_stages(self, ctx: Context) -> set[str]:
         """Every stage: the next one, and the leaf lookups, read each node id many times."""
-        deepest = max(tree.depth() for tree in ctx.forest.trees)
-        k = levels_per_stage(ctx.profile)
-        return {ctx.prefix(f"level{start}") for start in range(0, deepest, k)}
+        return {ctx.prefix(f"level{start}") for start, _, _ in self._plan(ctx)}
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         tree = ctx.forest.trees[tree_index]
         leaves = [int(n) for n in (tree.left == LEAF).nonzero()[0]]
-        # A search reads the node id once per level; without a fence, an engine that
-        # inlines CTEs would copy the id's whole expression into each read.
-        levels = levels_per_stage(ctx.profile) if ctx.profile.raw.get("cte_materialized") \
-            else 1
+        levels = levels_per_stage(ctx.profile) if searches(ctx.profile) else 1
         return node_lookup(self._node(ctx, tree_index), leaves, leaf_value, levels)
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         k = levels_per_stage(profile)
         deepest = max(tree.depth() for tree in forest.trees)
-        stages = -(-deepest // k) if deepest else 1
+        step = k + 1 - min(DISPATCH_LEVELS, k) if searches(profile) else k  # later stages
+        stages = 1 + -(-max(0, deepest - k) // step)
         internal = sum(int((tree.left != LEAF).sum()) for tree in forest.trees)
         leaves = forest.n_nodes - internal
         walk = internal * (70 + 2 * feature_bytes(profile, forest) + literal_bytes(profile))

@@ -68,14 +68,16 @@ def split_conditions(ctx: Context, tree_index: int,
 
 
 def nested_case(tree: Tree, conditions: list[str | None], leaf_value: LeafValue,
-                root: int = 0, levels: int | None = None) -> str:
+                root: int = 0, levels: int | None = None,
+                children: tuple[list[int], list[int]] | None = None) -> str:
     """Render a tree (or its top `levels` below `root`) without recursion.
 
     Fully grown trees can be thousands deep. A leaf, or a node `levels` below `root`, ends
     its branch with `leaf_value(node)`; the depth-staged and array shapes use the cut to
-    emit the node id reached.
+    emit the node id reached. `children`: the tree's left and right as lists, for callers
+    that render one tree from many roots.
     """
-    return CaseText(tree, conditions, root, levels).render(leaf_value)
+    return CaseText(tree, conditions, root, levels, children).render(leaf_value)
 
 
 class CaseText:
@@ -83,8 +85,9 @@ class CaseText:
     each output (class, leaf id) only fills the holes."""
 
     def __init__(self, tree: Tree, conditions: list[str | None], root: int = 0,
-                 levels: int | None = None) -> None:
-        left, right = tree.left.tolist(), tree.right.tolist()
+                 levels: int | None = None,
+                 children: tuple[list[int], list[int]] | None = None) -> None:
+        left, right = children or (tree.left.tolist(), tree.right.tolist())
         depth_limit = -1 if levels is None else levels
         pieces: list[str] = []
         holes: list[tuple[int, int]] = []  # (index in pieces, node whose value goes there)
