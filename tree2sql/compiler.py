@@ -215,10 +215,10 @@ class _QueryBuilder:
         # without common-subexpression elimination (PostgreSQL, SQLite) would otherwise
         # evaluate every tree sum once per reference: measured 3x slower on wine, 3 classes.
         last, fenced = self.internal("scores"), {self.internal("scores"), self.internal("raw")}
-        fenced |= {self.internal(name) for name in p.raw.get("fenced_stages", ())}
+        named = set(p.raw.get("fenced_stages", ()))  # "sums": every partial-sum stage
+        fenced |= {self.internal(name) for name in named - {"sums"}}
+        fenced |= {name for name, _ in sum_stages} if "sums" in named else set()
         fenced |= self.strategy.fenced_stages(ctx)
-        if "sums" in p.raw.get("fenced_stages", ()):
-            fenced |= {name for name, _ in sum_stages}
         if explain:
             ctes += explain.stages(last, lambda per_class: self._argmax("p", per_class))
             fenced |= set(explain.fenced)

@@ -114,7 +114,7 @@ class DepthStaged(Strategy):
 
     def __init__(self) -> None:
         self._conditions: dict[int, list[str | None]] = {}
-        self._depths: list[list[int]] = []
+        self._depths: list[np.ndarray] = []  # per tree, each node's depth
         self._stages: list[tuple[int, int, int]] | None = None
 
     def _split(self, ctx: Context, t: int) -> list[str | None]:
@@ -134,39 +134,44 @@ class DepthStaged(Strategy):
         """
         if self._stages is None:
             k = levels_per_stage(ctx.profile)
-            depths = [node_depths(tree) for tree in ctx.forest.trees]
-            inner = [tree.left != LEAF for tree in ctx.forest.trees]
-            deepest = max(max(d) for d in depths)
+            self._depths = [np.array(node_depths(tree)) for tree in ctx.forest.trees]
+            deepest = max(int(d.max()) for d in self._depths)
             plan, start = [(0, k, 0)], k
             while start < deepest:
                 dispatch = 1
                 if searches(ctx.profile):
-                    widest = max(int(((np.asarray(d) == start) & i).sum())
-                                 for d, i in zip(depths, inner, strict=True))
+                    widest = max(len(self._frontier(ctx, t, start))
+                                 for t in range(len(ctx.forest.trees)))
                     dispatch = min(lookup_levels(widest), DISPATCH_LEVELS, k)
                 plan.append((start, k + 1 - dispatch, dispatch))
                 start += k + 1 - dispatch
-            self._depths, self._stages = depths, plan if deepest else []
+            self._stages = plan if deepest else []
         return self._stages
+
+    def _frontier(self, ctx: Context, t: int, start: int) -> list[int]:
+        """Tree t's split nodes at depth `start`: where its rows stand when a stage begins."""
+        inner = ctx.forest.trees[t].left != LEAF
+        return np.flatnonzero((self._depths[t] == start) & inner).tolist()
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         plan = self._plan(ctx)
+        trees = ctx.forest.trees
+        deepest = [int(d.max()) for d in self._depths]
+        children = [(tree.left.tolist(), tree.right.tolist()) for tree in trees]
         carried = [*ctx.keys, ctx.ok, *ctx.features]
         stages: list[tuple[str, str]] = []
         source = ctx.source
         for start, levels, dispatch in plan:
             columns = []
-            for t, tree in enumerate(ctx.forest.trees):
+            for t, tree in enumerate(trees):
                 node = self._node(ctx, t)
                 if start == 0:
-                    step = render_levels(tree, self._split(ctx, t), 0, levels)
-                elif max(self._depths[t]) > start:
-                    left, right = tree.left.tolist(), tree.right.tolist()
-                    frontier = [n for n, d in enumerate(self._depths[t])
-                                if d == start and left[n] != LEAF]
+                    step = render_levels(tree, self._split(ctx, t), 0, levels, children[t])
+                elif deepest[t] > start:
                     walk = functools.partial(render_levels, tree, self._split(ctx, t),
-                                             levels=levels, children=(left, right))
-                    step = node_lookup(node, frontier, walk, dispatch, otherwise=node)
+                                             levels=levels, children=children[t])
+                    step = node_lookup(node, self._frontier(ctx, t, start), walk, dispatch,
+                                       otherwise=node)
                 else:
                     step = node
                 columns.append(f"{step} AS {node}")
