@@ -54,7 +54,9 @@ def read_back(run, profile_name: str) -> list[float]:
     out: list[float] = []
     for start in range(0, len(VALUES), BATCH):
         chunk = VALUES[start:start + BATCH]
-        select = ", ".join(f"{profile.double(v)} AS v{i}" for i, v in enumerate(chunk))
+        literals = profile.doubles(np.array(chunk))  # in bulk, as the compiler writes them
+        assert literals == [profile.double(v) for v in chunk]  # one at a time: the same
+        select = ", ".join(f"{text} AS v{i}" for i, text in enumerate(literals))
         out.extend(float(v) for v in run(f"SELECT {select}"))
     return out
 

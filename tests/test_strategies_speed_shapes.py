@@ -24,7 +24,7 @@ from tree2sql.engines import DuckDBEngine
 from tree2sql.errors import UserError
 from tree2sql.ingest import ingest
 from tree2sql.strategies import choose, text_arrays
-from tree2sql.strategies.text_arrays import TextArrays, node_depths, preorder_positions
+from tree2sql.strategies.text_arrays import TextArrays, preorder_positions
 
 SPEED_SHAPES = ("text_arrays",)
 
@@ -107,7 +107,7 @@ def test_layout_matches_a_plain_preorder_walk() -> None:
         order, position = preorder_positions(tree)
         assert order.tolist() == tree.preorder()
         assert np.array_equal(position[order], np.arange(tree.n_nodes))
-        assert int(node_depths(tree).max()) == tree.depth()
+        assert int(tree.node_depths().max()) == tree.depth()
 
 
 def test_statement_holds_one_literal_per_array(monkeypatch: pytest.MonkeyPatch) -> None:

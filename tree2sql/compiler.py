@@ -22,7 +22,7 @@ from tree2sql.forest import Forest, Link, Task
 from tree2sql.input_sql import InputRenderer
 from tree2sql.reasons import ReasonSql, check_reasons, reason_column_names
 from tree2sql.strategies import Context, Strategy, choose
-from tree2sql.strategies.base import LeafLiterals
+from tree2sql.strategies.base import LeafLiterals, LiteralTable
 
 INTERNAL_PREFIX = "__t2s_"
 PLUS = "\n    + "
@@ -124,15 +124,15 @@ def compile_forest(forest: Forest, request: ScoringRequest, dialect: str | Profi
     _check_names(request, outputs)
     strategy, reason = choose(forest, profile, request.strategy)
     builder = _QueryBuilder(forest, profile, request, features, strategy)
-    sql = builder.render(scores, label, progress, reasons)
-    setup = (*profile.raw.get("session_settings", ()),  # see dialects/README.md
-             *strategy.setup_statements(builder._context()))
     header = (f"-- tree2sql {__version__}: {forest.source}\n"
               f"-- model fingerprint sha256:{forest.fingerprint()}\n"
               f"-- dialect {profile.name}, strategy {strategy.name}, "
               f"combine {request.combine.value}\n"
               f"-- {CAUTION}\n")
-    return CompiledQuery(header + sql, profile.name, strategy.name, reason, outputs,
+    sql = builder.render(header, scores, label, progress, reasons)
+    setup = (*profile.raw.get("session_settings", ()),  # see dialects/README.md
+             *strategy.setup_statements(builder._context()))
+    return CompiledQuery(sql, profile.name, strategy.name, reason, outputs,
                          scores, label, features, setup, tuple(reasons))
 
 
@@ -176,8 +176,9 @@ class _QueryBuilder:
                          for i in range(forest.n_features + len(forest.derived))]
         self._built: Context | None = None
 
-    def render(self, scores: list[str], label: str | None,
+    def render(self, header: str, scores: list[str], label: str | None,
                progress: Callable[[int], None] | None, reasons: Sequence[str] = ()) -> str:
+        """The statement, after `header` (its comment lines)."""
         p, ok = self.profile, self.internal("ok")
         ctx = self._context()
         ctes = [*self._input_stages(), *self.strategy.stages(ctx)]
@@ -224,27 +225,36 @@ class _QueryBuilder:
             fenced |= set(explain.fenced)
             last = ctes[-1][0]
             final += explain.output_items(list(reasons))
-        return (f"WITH {self._with_clause(ctx, ctes, fenced)}\n"
-                f"SELECT {self._select_list(final)}\nFROM {last}")
+        return self._statement(ctx, ctes, fenced, f"SELECT {self._select_list(final)}\nFROM {last}",
+                               header)
 
     def render_leaf_ids(self) -> str:
         ctx = self._context()
         ctes = [*self._input_stages(), *self.strategy.stages(ctx)]
         leaves = [f"{self.strategy.tree_term(ctx, t, str)} AS {self.internal(f'leaf{t}')}"
                   for t in range(len(self.forest.trees))]
-        return (f"WITH {self._with_clause(ctx, ctes, self.strategy.fenced_stages(ctx))}\n"
-                f"SELECT {self._select_list(self.keys + leaves)}\nFROM {ctes[-1][0]}")
+        return self._statement(ctx, ctes, self.strategy.fenced_stages(ctx),
+                               f"SELECT {self._select_list(self.keys + leaves)}\n"
+                               f"FROM {ctes[-1][0]}")
 
-    def _with_clause(self, ctx: Context, ctes: list[tuple[str, str]],
-                     fenced: set[str] = frozenset()) -> str:
-        """The strategy's named constants, then the CTEs (`fenced` ones materialized)."""
+    def _statement(self, ctx: Context, ctes: list[tuple[str, str]], fenced: set[str],
+                   select: str, header: str = "") -> str:
+        """`header`, WITH the strategy's named constants, the CTEs (`fenced` ones
+        materialized), then `select`: joined once, since a statement can be megabytes and
+        each copy of it costs time (fresh memory is slow to touch the first time)."""
         p = self.profile
         constants = [p.raw["constant_alias"].format(value=value, name=name)
                      for name, value in self.strategy.constants(ctx)]
         fence = p.raw.get("cte_materialized", "")
-        return ",\n".join([*constants, *(
-            f"{name} AS {fence + ' ' if fence and name in fenced else ''}(\n{body}\n)"
-            for name, body in ctes)])
+        parts = [header, "WITH "]
+        for item in constants:
+            parts += [item, ",\n"]
+        for name, body in ctes:
+            parts += [name, f" AS {fence + ' ' if fence and name in fenced else ''}(\n", body,
+                      "\n),\n"]
+        parts[-1] = "\n)\n"
+        parts.append(select)
+        return "".join(parts)
 
     def _context(self) -> Context:
         """Built once: its per-tree bounds are shared by the query and the setup statements."""
@@ -369,7 +379,9 @@ class _QueryBuilder:
                                                 trees[t].is_leaf(), plain=True)
                     for k in range(self.forest.n_outputs)]
         column = (lambda k: 0) if self.forest.aggregation.tree_output else (lambda k: k)
-        return [lambda t, k=k: LeafLiterals(trees[t].value[:, column(k)], profile.doubles,
+        literals = LiteralTable(profile.doubles,
+                                np.concatenate([tree.value[tree.is_leaf()] for tree in trees]))
+        return [lambda t, k=k: LeafLiterals(trees[t].value[:, column(k)], literals,
                                             trees[t].is_leaf(), profile.plain_doubles)
                 for k in range(self.forest.n_raw)]
 

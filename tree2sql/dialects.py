@@ -17,7 +17,7 @@ import numpy as np
 from sqlglot import exp
 
 from tree2sql.errors import UserError
-from tree2sql.exact import SHORTEST, float_text
+from tree2sql.exact import SHORTEST, float_texts
 from tree2sql.resources import data_dir
 
 # Default trees summed per CTE stage: long `a + b + c ...` chains are as deep as they are
@@ -76,18 +76,9 @@ class Profile:
                 and self.raw.get("literal_style", SHORTEST) == SHORTEST)
 
     def doubles(self, values: np.ndarray) -> list[str]:
-        """`double` of each value, in bulk: one repr per value where the style is the
-        shortest text; other literal styles, and non-finite values (to raise as `double`
-        does), go through `double` one by one."""
-        floats = np.asarray(values, dtype=np.float64).ravel()
-        if (self.raw.get("literal_style", SHORTEST) != SHORTEST
-                or not np.isfinite(floats).all()):
-            return [self.double(v) for v in floats.tolist()]
-        texts = [text if "e" in text else text + "e0" for text in map(repr, floats.tolist())]
-        if self.double_literal == "{text}":
-            return texts
-        before, after = self.double_literal.split("{text}")
-        return [before + text + after for text in texts]
+        """`double` of each value, in bulk (tree2sql.exact.float_texts)."""
+        return float_texts(values, self.raw.get("literal_style", SHORTEST),
+                           self.raw.get("arithmetic_literal", "{text}"), self.double_literal)
 
     @property
     def trees_per_stage(self) -> int:
@@ -161,10 +152,7 @@ def _double(value: float, style: str, arithmetic: str, template: str) -> str:
 
 
 def _double_text(value: float, style: str, arithmetic: str, template: str) -> str:
-    text = float_text(value, style)
-    if text.startswith("("):  # an arithmetic form, dressed as the profile says
-        text = arithmetic.format(text=text)
-    return template.format(text=text)
+    return float_texts(np.array([value]), style, arithmetic, template)[0]
 
 
 _remembered_double_text = functools.lru_cache(maxsize=1 << 16)(_double_text)

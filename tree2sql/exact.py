@@ -8,8 +8,6 @@ round to nearest, ties to even, as numpy's float32 cast implements it).
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
 from tree2sql.forest import Comparison
@@ -65,60 +63,141 @@ POWER_OF_TWO_STEP = 62  # 2**62 still fits a 64-bit integer literal
 
 
 def float_text(x: float, style: str = SHORTEST) -> str:
-    """SQL text for the double x in a dialect's literal style (see `exact_arithmetic_text`).
+    """SQL text for the double x in a dialect's literal style (see `float_texts`)."""
+    return float_texts(np.array([x], dtype=np.float64), style)[0]
+
+
+def float_texts(values: np.ndarray, style: str = SHORTEST, arithmetic: str = "{text}",
+                template: str = "{text}") -> list[str]:
+    """SQL text for each double in a dialect's literal style, in bulk.
 
     The shortest style is Python's repr (David Gay's shortest round-tripping digits),
     always with an exponent so that engines such as DuckDB read a DOUBLE, not a DECIMAL.
+    The exact-arithmetic style is for engines whose decimal reader is not correctly
+    rounded (SQLite 3.40 misreads about 1 in 5,000 ordinary decimals such as 0.087742647
+    by one unit in the last place): see `_exact_arithmetic`; `arithmetic` is put around
+    each arithmetic form, then `template` around every text (both over {text}). Each
+    distinct bit pattern is formatted once (a forest's leaf values repeat: 0, 1, small
+    fractions).
     """
-    x = float(x)
-    if not math.isfinite(x):
-        raise ValueError(f"no SQL literal for non-finite value {x!r}")
-    if style == EXACT_ARITHMETIC:
-        return exact_arithmetic_text(x)
-    if style != SHORTEST:
+    floats = np.asarray(values, dtype=np.float64).ravel()
+    if not np.isfinite(floats).all():
+        bad = floats[~np.isfinite(floats)][0]
+        raise ValueError(f"no SQL literal for non-finite value {bad!r}")
+    if style not in (SHORTEST, EXACT_ARITHMETIC):
         raise ValueError(f"unknown literal style {style!r}")
-    text = repr(x)
-    if "e" not in text:
-        text += "e0"
-    return text
+    distinct, where = np.unique(floats.view(np.int64), return_inverse=True)
+    distinct = distinct.view(np.float64)
+    if style == SHORTEST:
+        texts = np.array([text if "e" in text else text + "e0"
+                          for text in map(repr, distinct.tolist())], dtype=object)
+    else:
+        texts = _exact_arithmetic(distinct, arithmetic.split("{text}"))
+    if template != "{text}":
+        before, after = template.split("{text}")
+        texts = before + texts + after
+    return texts[where].tolist()
 
 
-def exact_arithmetic_text(x: float) -> str:
-    """x as one IEEE operation on operands every engine reads exactly.
+def _exact_arithmetic(x: np.ndarray, around: list[str]) -> np.ndarray:
+    """x as one IEEE operation on operands every engine reads exactly, each operation
+    between `around`'s two texts.
 
-    For engines whose decimal reader is not correctly rounded (SQLite 3.40 misreads about
-    1 in 5,000 ordinary decimals such as 0.087742647 by one unit in the last place):
-    integers below 2**53 and powers of ten up to 1e22 convert exactly, and one IEEE
-    multiply or divide is correctly rounded, so `(S / 1eK)` is exactly x when x's shortest
-    digits S are small enough (Clinger's fast path). Other values are written in binary as
-    an odd integer times powers of two, each step exact.
+    Integers below 2**53 and powers of ten up to 1e22 convert exactly, and one IEEE
+    multiply or divide is correctly rounded, so `(S / 1eK)` is exactly x when S / 10**K
+    rounds to x (Clinger's fast path); numpy's division, the same IEEE operation the
+    engine performs, checks each candidate. The smallest such K gives x's shortest
+    digits. Other values are written in binary (`_binary_forms`).
     """
-    if x == 0.0 or (x.is_integer() and abs(x) < EXACT_INTEGER):
-        return repr(x) + "e0"  # integral: read exactly, sign of zero kept
-    negative, significand, exponent = shortest_digits(x)
-    text = f"{'-' if negative else ''}{significand}"
-    if significand < EXACT_INTEGER and 0 < -exponent <= POWER_OF_TEN_EXACT:
-        return f"({text} / 1e{-exponent})"
-    if significand < EXACT_INTEGER and 0 < exponent <= POWER_OF_TEN_EXACT:
-        return f"({text} * 1e{exponent})"
-    mantissa, power = math.frexp(x)
-    odd, shift = int(mantissa * 2**53), power - 53
-    while odd % 2 == 0:
-        odd, shift = odd // 2, shift + 1
-    steps, op = [f"CAST({odd} AS REAL)"], " * " if shift > 0 else " / "
-    for done in range(0, abs(shift), POWER_OF_TWO_STEP):
-        steps.append(str(2 ** min(POWER_OF_TWO_STEP, abs(shift) - done)))
-    return "(" + op.join(steps) + ")"
+    texts = np.full(len(x), None, dtype=object)
+    integral = x == np.trunc(x)
+    small = integral & (np.abs(x) < EXACT_INTEGER)
+    texts[small] = [repr(v) + "e0" for v in x[small].tolist()]  # sign of zero kept
+    forms = np.full(len(x), None, dtype=object)
+    _decimal_forms(x, forms, np.flatnonzero(~integral), divide=True)
+    _decimal_forms(x, forms, np.flatnonzero(integral & ~small), divide=False)
+    _binary_forms(x, forms, np.flatnonzero(~small & (forms == None)))  # noqa: E711
+    before, after = around
+    texts[~small] = before + forms[~small] + after
+    return texts
 
 
-def shortest_digits(x: float) -> tuple[bool, int, int]:
-    """Nonzero x's shortest round-trip digits as (negative, S, E), x = -+S * 10**E with S
-    free of trailing zeros (what Decimal(repr(x)).normalize() gives, read from the text)."""
-    text = repr(x)
-    negative = text[0] == "-"
-    mantissa, _, power = text.lstrip("-").partition("e")
-    whole, _, fraction = mantissa.partition(".")
-    digits = (whole + fraction).lstrip("0")
-    significand = digits.rstrip("0")
-    exponent = int(power or 0) - len(fraction) + len(digits) - len(significand)
-    return negative, int(significand), exponent
+def _decimal_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray, divide: bool) -> None:
+    """Write `(S / 1eK)` (fractions; smallest K) or `(S * 1eK)` (integers past 2**53;
+    largest K) into `forms[at]` where one IEEE operation on an integer S below 2**53 gives
+    exactly x. Every K is tried at once; the integer nearest x * 10**K may be one off, so
+    its neighbours are tried too."""
+    if divide:  # a form with some K implies one with the most digits S allows: try it first
+        with np.errstate(divide="ignore", over="ignore"):
+            most = np.floor(np.log10((EXACT_INTEGER - 1) / np.abs(x[at])))
+        most = np.clip(most, 1, POWER_OF_TEN_EXACT)
+        at = at[_candidates(x[at][:, None], 10.0 ** most[:, None], divide)[1].any(axis=1)]
+    if not at.size:
+        return
+    k = np.arange(1, POWER_OF_TEN_EXACT + 1) if divide else \
+        np.arange(POWER_OF_TEN_EXACT, 0, -1)
+    digits, found = _candidates(x[at][:, None], 10.0 ** k, divide)
+    has = found.any(axis=1)
+    first = found.argmax(axis=1)[has]
+    rows = np.flatnonzero(has)
+    forms[at[has]] = ("(" + integer_texts(digits[rows, first]) + (" / 1e" if divide else " * 1e")
+                      + _POWERS[k[first]] + ")")
+
+
+def _candidates(v: np.ndarray, scale: np.ndarray, divide: bool) -> tuple[np.ndarray, np.ndarray]:
+    """(S, ok) per value and scale: the integer S nearest v * scale (or v / scale), or a
+    neighbour, and whether S below 2**53 gives exactly v in one IEEE operation."""
+    with np.errstate(over="ignore"):
+        guess = np.rint(v * scale if divide else v / scale)
+        digits, found = np.zeros_like(guess), np.zeros(guess.shape, dtype=bool)
+        for step in (1.0, -1.0, 0.0):  # the nearest integer, tried last, wins
+            s = guess + step
+            ok = (np.abs(s) < EXACT_INTEGER) & ((s / scale if divide else s * scale) == v)
+            digits = np.where(ok, s, digits)
+            found |= ok
+    return digits, found
+
+
+# str(k) for k < 64, and str(2**k): the exponents and factors the forms write.
+_POWERS = np.array([str(k) for k in range(64)], dtype=object)
+_POWERS_OF_TWO = np.array([str(2**k) for k in range(POWER_OF_TWO_STEP + 1)], dtype=object)
+
+
+_SMALL_INTEGERS = 1 << 22  # integers a table of texts covers (node ids, slots, digits)
+_integer_table = np.array(["0"], dtype=object)
+
+
+def integer_texts(values: np.ndarray) -> np.ndarray:
+    """str() of each integer, as an object array: small non-negative ones from a table
+    of their texts, grown on demand (node arrays hold mostly such numbers)."""
+    global _integer_table
+    values = np.asarray(values).astype(np.int64)
+    if not values.size:
+        return np.empty(0, dtype=object)
+    low, high = int(values.min()), int(values.max())
+    if low < 0 or high >= _SMALL_INTEGERS:
+        return np.array(list(map(str, values.tolist())), dtype=object)
+    if high >= len(_integer_table):
+        size = min(_SMALL_INTEGERS, max(high + 1, 2 * len(_integer_table)))
+        _integer_table = np.array(list(map(str, range(size))), dtype=object)
+    return _integer_table[values]
+
+
+def _binary_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray) -> None:
+    """Write x as an odd integer times (or divided by) powers of two, each step exact:
+    `(CAST(odd AS REAL) / 2**s)`, the power split in steps of at most 2**62."""
+    if not at.size:
+        return
+    mantissa, power = np.frexp(x[at])
+    odd = (mantissa * 2.0**53).astype(np.int64)
+    zeros = np.frexp((odd & -odd).astype(np.float64))[1] - 1  # trailing zero bits
+    odd, shift = odd >> zeros, power - 53 + zeros
+    one_step = (shift != 0) & (np.abs(shift) <= POWER_OF_TWO_STEP)
+    forms[at[one_step]] = ("(CAST(" + integer_texts(odd[one_step]) + " AS REAL)"
+                           + np.where(shift[one_step] > 0, " * ", " / ").astype(object)
+                           + _POWERS_OF_TWO[np.abs(shift[one_step])] + ")")
+    for i in np.flatnonzero(~one_step).tolist():
+        steps, op = [f"CAST({odd[i]} AS REAL)"], " * " if shift[i] > 0 else " / "
+        for done in range(0, abs(int(shift[i])), POWER_OF_TWO_STEP):
+            steps.append(str(2 ** min(POWER_OF_TWO_STEP, abs(int(shift[i])) - done)))
+        forms[at[i]] = "(" + op.join(steps) + ")"

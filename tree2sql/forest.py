@@ -107,16 +107,20 @@ class Tree:
         return self.left == LEAF
 
     def depth(self) -> int:
-        """Longest root-to-leaf edge count: one numpy step per level, no per-node Python
-        (the planner asks for it per strategy and dialect)."""
+        """Longest root-to-leaf edge count (the planner asks for it per strategy and dialect)."""
+        return int(self.node_depths().max())
+
+    def node_depths(self) -> np.ndarray:
+        """Depth of every node (root 0): one numpy step per level, no per-node Python."""
+        depth = np.zeros(self.n_nodes, dtype=np.int64)
         frontier = np.zeros(1, dtype=np.int64)
-        levels = 0
-        while True:
+        level = 0
+        while frontier.size:
+            depth[frontier] = level
             inner = frontier[self.left[frontier] != LEAF]
-            if inner.size == 0:
-                return levels
             frontier = np.concatenate((self.left[inner], self.right[inner]))
-            levels += 1
+            level += 1
+        return depth
 
     def preorder(self) -> list[int]:
         """Node ids root first, left subtree before right (any node numbering)."""

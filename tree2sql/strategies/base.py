@@ -15,7 +15,7 @@ import numpy as np
 
 from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
-from tree2sql.exact import bounds
+from tree2sql.exact import bounds, integer_texts
 from tree2sql.forest import Forest
 
 LeafValue = Callable[[int], str]  # node id of a leaf -> SQL literal for that leaf
@@ -34,17 +34,65 @@ class LeafLiterals:
                  is_leaf: np.ndarray, plain: bool) -> None:
         self.values, self.plain = values, plain
         self._make, self._is_leaf = literals, is_leaf
-        self._literals: dict[int, str] | None = None
+        self._literals: np.ndarray | None = None  # object array by node id
 
     def __call__(self, node: int) -> str:
+        literal = self._table()[node]
+        return self._make(self.values[node:node + 1])[0] if literal is None else literal
+
+    def at(self, nodes: np.ndarray) -> list[str]:
+        """The literals of `nodes` (leaves, or nodes where a shape cut the tree), in bulk."""
+        found = self._table()[nodes]
+        missing = np.flatnonzero(found == None)  # noqa: E711 (elementwise test)
+        if missing.size:  # not leaves: made on their own
+            found[missing] = self._make(self.values[nodes[missing]])
+        return found.tolist()
+
+    def _table(self) -> np.ndarray:
+        """Literal by node id (None at split nodes), made on first use."""
         if self._literals is None:
+            self._literals = np.full(len(self._is_leaf), None, dtype=object)
             leaves = np.flatnonzero(self._is_leaf)
-            self._literals = dict(zip(leaves.tolist(), self._make(self.values[leaves]),
-                                      strict=True))
-        literal = self._literals.get(node)
-        if literal is None:  # not a leaf (a shape cut the tree there): made on its own
-            return self._make(self.values[node:node + 1])[0]
-        return literal
+            self._literals[leaves] = self._make(self.values[leaves])
+        return self._literals
+
+
+def leaf_literals(leaf_value: LeafValue, nodes: np.ndarray) -> list[str]:
+    """`leaf_value` of each node: in bulk where it is a LeafLiterals."""
+    if isinstance(leaf_value, LeafLiterals):
+        return leaf_value.at(nodes)
+    return list(map(leaf_value, nodes.tolist()))
+
+
+class LiteralTable:
+    """Literals of a known set of doubles, made in one bulk pass on first use, then
+    looked up.
+
+    Each bulk pass has a fixed cost, so a forest's thresholds, or its leaf values, are
+    formatted once rather than tree by tree. A value outside the set is made on its own
+    (a non-finite one raises, as `make` does).
+    """
+
+    def __init__(self, make: Callable[[np.ndarray], list[str]], values: np.ndarray) -> None:
+        floats = np.asarray(values, dtype=np.float64).ravel()
+        self._make, self._values = make, floats[np.isfinite(floats)]
+        self._bits: np.ndarray | None = None
+        self._texts = np.empty(0, dtype=object)
+
+    def __call__(self, values: np.ndarray) -> list[str]:
+        if self._bits is None:
+            self._bits = np.unique(self._values.view(np.int64))
+            self._texts = np.array(self._make(self._bits.view(np.float64)), dtype=object)
+        floats = np.asarray(values, dtype=np.float64).ravel()
+        bits = floats.view(np.int64)
+        at = np.minimum(np.searchsorted(self._bits, bits), len(self._bits) - 1)
+        if not len(self._bits):
+            return self._make(floats)
+        texts = self._texts[at]
+        unknown = np.flatnonzero(self._bits[at] != bits)
+        if unknown.size:
+            texts[unknown] = self._make(floats[unknown])
+        return texts.tolist()
 
 
 @dataclass(frozen=True)
@@ -107,13 +155,16 @@ def require_keys(profile: Profile, keys: tuple[str, ...], shape: str) -> None:
 
 def numbers_text(values: np.ndarray) -> str:
     """Comma-separated numbers: integers as they are, doubles as their shortest round-trip
-    repr. +0.0, the placeholder filling about half of a node array, is written as "0"
-    without formatting (float formatting is most of the compile time)."""
+    repr, +0.0 (the placeholder filling about half of a node array) as "0". Formatting is
+    most of the compile time, so each distinct double is formatted once (leaf values
+    repeat) and integers come from a table of their texts."""
     if values.dtype.kind != "f":
-        return ",".join(map(str, values.tolist()))
+        return ",".join(integer_texts(values).tolist())
     items = np.full(len(values), "0", dtype=object)
     written = (values != 0) | np.signbit(values)
-    items[written] = list(map(float.__repr__, values[written].tolist()))
+    distinct, where = np.unique(values[written].view(np.int64), return_inverse=True)
+    items[written] = np.array(list(map(float.__repr__, distinct.view(np.float64).tolist())),
+                              dtype=object)[where]
     return ",".join(items.tolist())
 
 

@@ -24,6 +24,7 @@ import numpy as np
 
 from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
+from tree2sql.exact import integer_texts
 from tree2sql.forest import LEAF, Forest
 from tree2sql.strategies.base import (
     Context,
@@ -36,7 +37,7 @@ from tree2sql.strategies.base import (
     literal_bytes,
     require_keys,
 )
-from tree2sql.strategies.nested_case import CaseText, split_conditions
+from tree2sql.strategies.nested_case import every_tree
 
 REQUIRED_KEYS = ("array_from_text", "array_index", "integer_type")
 
@@ -57,10 +58,11 @@ class CaseLeaves(Strategy):
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         require_keys(ctx.profile, REQUIRED_KEYS, self.name)
+        cases, offsets = every_tree(ctx)
         walks = []
-        for t, tree in enumerate(ctx.forest.trees):
-            numbers = self._leaf_numbers(ctx, t).astype(str).tolist()
-            case = CaseText(tree, split_conditions(ctx, t)).render(numbers.__getitem__)
+        for t in range(len(ctx.forest.trees)):
+            numbers = integer_texts(self._leaf_numbers(ctx, t))
+            case = cases.render_root(t, numbers.__getitem__, int(offsets[t]))
             walks.append(f"{case} AS {self._leaf(ctx, t)}")
         fence = ctx.profile.raw.get("leaf_stage_fence", "")
         body = ("SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *walks])

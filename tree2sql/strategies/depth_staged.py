@@ -16,12 +16,10 @@ ids are the model's own, so the same SQL can report the leaf each row reached.
 
 from __future__ import annotations
 
-import functools
-
 import numpy as np
 
 from tree2sql.dialects import Profile
-from tree2sql.forest import LEAF, Forest, Tree
+from tree2sql.forest import LEAF, Forest
 from tree2sql.strategies.base import (
     Context,
     LeafValue,
@@ -30,7 +28,7 @@ from tree2sql.strategies.base import (
     feature_bytes,
     literal_bytes,
 )
-from tree2sql.strategies.nested_case import nested_case, split_conditions
+from tree2sql.strategies.nested_case import CaseText, side_by_side, split_conditions
 
 DEFAULT_LEVELS = 8  # per stage, when a profile states neither a CASE limit nor stage_levels
 EXPRESSION_DEPTH_PER_LEVEL = 2  # a CASE level costs up to two levels of expression depth
@@ -55,21 +53,6 @@ def levels_per_stage(profile: Profile) -> int:
     if depth_limit:
         levels = min(levels, (depth_limit - 120) // EXPRESSION_DEPTH_PER_LEVEL)
     return max(1, int(levels))
-
-
-def node_depths(tree: Tree) -> list[int]:
-    """Depth of every node (root 0), without recursion."""
-    depth = [0] * tree.n_nodes
-    for node in tree.preorder():
-        if tree.left[node] != LEAF:
-            depth[int(tree.left[node])] = depth[int(tree.right[node])] = depth[node] + 1
-    return depth
-
-
-def render_levels(tree: Tree, conditions: list[str | None], root: int, levels: int,
-                  children: tuple[list[int], list[int]] | None = None) -> str:
-    """Nested CASE from `root` down `levels` tree levels, giving the node id reached."""
-    return nested_case(tree, conditions, str, root, levels, children)
 
 
 def node_lookup(node: str, ids: list[int], value: LeafValue, levels: int,
@@ -113,14 +96,8 @@ class DepthStaged(Strategy):
     summary = "node id per tree, a few levels per CTE stage (bounded CASE nesting)"
 
     def __init__(self) -> None:
-        self._conditions: dict[int, list[str | None]] = {}
         self._depths: list[np.ndarray] = []  # per tree, each node's depth
         self._stages: list[tuple[int, int, int]] | None = None
-
-    def _split(self, ctx: Context, t: int) -> list[str | None]:
-        if t not in self._conditions:
-            self._conditions[t] = split_conditions(ctx, t)
-        return self._conditions[t]
 
     def _node(self, ctx: Context, t: int) -> str:
         return ctx.prefix(f"n{t}")
@@ -134,7 +111,7 @@ class DepthStaged(Strategy):
         """
         if self._stages is None:
             k = levels_per_stage(ctx.profile)
-            self._depths = [np.array(node_depths(tree)) for tree in ctx.forest.trees]
+            self._depths = [tree.node_depths() for tree in ctx.forest.trees]
             deepest = max(int(d.max()) for d in self._depths)
             plan, start = [(0, k, 0)], k
             while start < deepest:
@@ -157,20 +134,31 @@ class DepthStaged(Strategy):
         plan = self._plan(ctx)
         trees = ctx.forest.trees
         deepest = [int(d.max()) for d in self._depths]
-        children = [(tree.left.tolist(), tree.right.tolist()) for tree in trees]
         carried = [*ctx.keys, ctx.ok, *ctx.features]
+        stacked, bound, offsets = side_by_side(trees, ctx.bounds)
+        splits = split_conditions(ctx, stacked, bound)
         stages: list[tuple[str, str]] = []
         source = ctx.source
         for start, levels, dispatch in plan:
+            # Where each tree's rows stand as the stage begins; every walk laid out at once.
+            frontiers = [[0] if start == 0 else
+                         self._frontier(ctx, t, start) if deepest[t] > start else []
+                         for t in range(len(trees))]
+            walks = CaseText(stacked, splits, np.concatenate(
+                [np.array(f, dtype=np.int64) + offsets[t] for t, f in enumerate(frontiers)]),
+                levels)
+            root = 0
             columns = []
-            for t, tree in enumerate(trees):
+            for t, frontier in enumerate(frontiers):
                 node = self._node(ctx, t)
+                texts = [walks.render_root(root + i, str, int(offsets[t]))
+                         for i in range(len(frontier))]
+                root += len(frontier)
                 if start == 0:
-                    step = render_levels(tree, self._split(ctx, t), 0, levels, children[t])
-                elif deepest[t] > start:
-                    walk = functools.partial(render_levels, tree, self._split(ctx, t),
-                                             levels=levels, children=children[t])
-                    step = node_lookup(node, self._frontier(ctx, t, start), walk, dispatch,
+                    step = texts[0]
+                elif frontier:
+                    walk = dict(zip(frontier, texts, strict=True))
+                    step = node_lookup(node, frontier, walk.__getitem__, dispatch,
                                        otherwise=node)
                 else:
                     step = node

@@ -7,7 +7,8 @@ benchmarks/README.md), which is why other strategies exist.
 
 from __future__ import annotations
 
-import math
+from collections.abc import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -19,109 +20,186 @@ from tree2sql.strategies.base import (
     Needs,
     Strategy,
     feature_bytes,
+    leaf_literals,
     literal_bytes,
 )
 
-ALWAYS_LEFT = "left"
-ALWAYS_RIGHT = "right"
+# How a node routes a row (Splits.route).
+UNUSED = 0  # a leaf, or a split the caller did not ask for
+TEST_LEFT = 1  # CASE WHEN condition THEN left ELSE right END
+# CASE WHEN condition THEN right ELSE left END: where missing values go left, the condition
+# is written `x > b`, and a NULL condition is not true (SQL standard, three-valued logic),
+# so NULL takes the ELSE branch with no `OR x IS NULL` test of its own.
+TEST_RIGHT = 2
+GO_LEFT = 3  # every row goes left (no CASE written)
+GO_RIGHT = 4  # every row goes right
 
 
-class SendsRight(str):
-    """A condition that sends the row right, written where missing values go left:
-    `CASE WHEN x > b THEN right ELSE left END` sends NULL to the ELSE branch (a NULL
-    condition is not true; SQL standard, three-valued logic), so such a split needs no
-    `OR x IS NULL` test of its own."""
+@dataclass(frozen=True)
+class Splits:
+    """Per node of one tree: how it routes a row (`route`) and, for a test, its CASE
+    opening in two pieces: `opening` (`CASE WHEN x <= `, one shared string per feature
+    and operator) and `operand` (the bound's literal, or empty), object arrays of str.
+    Kept apart, they are never concatenated per node; the final join writes them."""
+
+    route: np.ndarray
+    opening: np.ndarray
+    operand: np.ndarray
 
 
-def split_conditions(ctx: Context, tree_index: int,
-                     nodes: list[int] | None = None) -> list[str | None]:
-    """Per node: the SQL condition sending a row left (a `SendsRight` one sends it right),
-    or ALWAYS_LEFT / ALWAYS_RIGHT.
+# Per feature, the openings split_conditions writes, by these columns.
+AT_MOST, ABOVE, MISSING, PRESENT = range(4)
+
+
+def _openings(features: Sequence[str]) -> np.ndarray:
+    return np.array([[f"CASE WHEN {x} <= ", f"CASE WHEN {x} > ", f"CASE WHEN {x} IS NULL",
+                      f"CASE WHEN {x} IS NOT NULL"] for x in features], dtype=object)
+
+
+def side_by_side(trees: Sequence[Tree], bounds: Sequence[np.ndarray],
+                 ) -> tuple[Tree, np.ndarray, np.ndarray]:
+    """Several trees as one node space (each tree's ids shifted past the previous trees'),
+    its bounds, and each tree's offset (where its root is): one numpy pass lays out
+    every tree at once, instead of one pass per tree."""
+    offsets = np.cumsum([0] + [tree.n_nodes for tree in trees[:-1]])
+
+    def shifted(children: str) -> np.ndarray:
+        return np.concatenate([np.where(getattr(tree, children) == LEAF, LEAF,
+                                        getattr(tree, children) + offset)
+                               for tree, offset in zip(trees, offsets, strict=True)])
+
+    stacked = Tree(np.concatenate([tree.feature for tree in trees]),
+                   np.concatenate([tree.threshold for tree in trees]),
+                   shifted("left"), shifted("right"),
+                   np.concatenate([tree.missing_left for tree in trees]),
+                   np.concatenate([tree.value for tree in trees]))
+    return stacked, np.concatenate(bounds), offsets
+
+
+def split_conditions(ctx: Context, tree: Tree, bound: np.ndarray,
+                     nodes: np.ndarray | None = None) -> Splits:
+    """Every split's routing and condition (`bound`: the tree's bounds), written in bulk.
 
     Rows with a missing value follow the model's missing direction; where the model
     cannot take missing values the compiler has already given such rows NULL scores.
-    `nodes` limits the work to those split nodes (the others stay None).
+    `nodes` limits the work to those split nodes (the others stay UNUSED).
     """
-    tree: Tree = ctx.forest.trees[tree_index]
-    routes_missing = ctx.forest.accepts_missing
-    conditions: list[str | None] = [None] * tree.n_nodes
+    route = np.zeros(tree.n_nodes, dtype=np.int8)
+    opening = np.full(tree.n_nodes, "", dtype=object)
+    operand = np.full(tree.n_nodes, "", dtype=object)
     if nodes is None:
-        nodes = (tree.left != LEAF).nonzero()[0].tolist()
-    bound = ctx.bounds[tree_index][nodes].tolist()
-    # One bulk pass for every bound written as a literal (all but the infinite ones).
-    written = [b for b in bound if not math.isinf(b)]
-    literals = iter(ctx.profile.doubles(np.array(written, dtype=np.float64)))
-    feature, missing = tree.feature.tolist(), tree.missing_left.tolist()
-    for node, b in zip(nodes, bound, strict=True):
-        x = ctx.features[feature[node]]
-        missing_left = routes_missing and bool(missing[node])
-        if b == math.inf:
-            conditions[node] = ALWAYS_LEFT if missing_left or not routes_missing \
-                else f"{x} IS NOT NULL"
-        elif b == -math.inf:
-            conditions[node] = f"{x} IS NULL" if missing_left else ALWAYS_RIGHT
-        elif missing_left:
-            conditions[node] = SendsRight(f"{x} > {next(literals)}")
-        else:
-            conditions[node] = f"{x} <= {next(literals)}"
-    return conditions
-
-
-def nested_case(tree: Tree, conditions: list[str | None], leaf_value: LeafValue,
-                root: int = 0, levels: int | None = None,
-                children: tuple[list[int], list[int]] | None = None) -> str:
-    """Render a tree (or its top `levels` below `root`) without recursion.
-
-    Fully grown trees can be thousands deep. A leaf, or a node `levels` below `root`, ends
-    its branch with `leaf_value(node)`; the depth-staged and array shapes use the cut to
-    emit the node id reached. `children`: the tree's left and right as lists, for callers
-    that render one tree from many roots.
-    """
-    return CaseText(tree, conditions, root, levels, children).render(leaf_value)
+        nodes = np.flatnonzero(tree.left != LEAF)
+    nodes = np.asarray(nodes, dtype=np.int64)
+    bound = bound[nodes]
+    openings = _openings(ctx.features)[tree.feature[nodes]]
+    missing_left = tree.missing_left[nodes].astype(bool) & ctx.forest.accepts_missing
+    finite = np.isfinite(bound)
+    at = nodes[finite]
+    sends_right = missing_left[finite]
+    operand[at] = ctx.profile.doubles(bound[finite])
+    opening[at] = np.where(sends_right, openings[finite, ABOVE], openings[finite, AT_MOST])
+    route[at] = np.where(sends_right, TEST_RIGHT, TEST_LEFT)
+    # +inf: every value goes left (missing too, where the model sends it left);
+    # -inf: only missing values may go left.
+    up, down = bound == np.inf, bound == -np.inf
+    everything = up & (missing_left | (not ctx.forest.accepts_missing))
+    route[nodes[everything]] = GO_LEFT
+    present = up & ~everything
+    route[nodes[present]], opening[nodes[present]] = TEST_LEFT, openings[present, PRESENT]
+    absent = down & missing_left
+    route[nodes[absent]], opening[nodes[absent]] = TEST_LEFT, openings[absent, MISSING]
+    route[nodes[down & ~missing_left]] = GO_RIGHT
+    return Splits(route, opening, operand)
 
 
 class CaseText:
-    """A tree's nested CASE with holes for its leaf values: the walk is done once, and
-    each output (class, leaf id) only fills the holes."""
+    """Nested CASE text of one tree from each of `roots`, with holes for the values of the
+    nodes where it stops (leaves, or nodes `levels` below the root): the layout is worked
+    out once, level by level in numpy, and each output (a class, a leaf id) only fills
+    the holes.
 
-    def __init__(self, tree: Tree, conditions: list[str | None], root: int = 0,
-                 levels: int | None = None,
-                 children: tuple[list[int], list[int]] | None = None) -> None:
-        left, right = children or (tree.left.tolist(), tree.right.tolist())
-        depth_limit = -1 if levels is None else levels
-        pieces: list[str] = []
-        holes: list[tuple[int, int]] = []  # (index in pieces, node whose value goes there)
-        # Items are pieces of text, or (node, level) pairs still to render.
-        stack: list[tuple[int, int] | str] = [(root, 0)]
-        pop, push, extend = stack.pop, stack.append, stack.extend
-        while stack:
-            item = pop()
-            if item.__class__ is str:
-                pieces.append(item)
-                continue
-            node, level = item
-            if left[node] == LEAF or level == depth_limit:
-                holes.append((len(pieces), node))
-                pieces.append("")
-                continue
-            condition = conditions[node]
-            if condition == ALWAYS_LEFT:
-                push((left[node], level + 1))
-            elif condition == ALWAYS_RIGHT:
-                push((right[node], level + 1))
-            else:
-                pieces.append(f"CASE WHEN {condition} THEN ")
-                then, other = left[node], right[node]
-                if condition.__class__ is SendsRight:
-                    then, other = other, then
-                extend((" END", (other, level + 1), " ELSE ", (then, level + 1)))
-        self.pieces, self.holes = pieces, holes
+    Each split written as a test takes five pieces (its opening, operand, ` THEN `,
+    ` ELSE `, ` END`) and each hole one; a subtree's pieces are contiguous, so a node's place
+    follows from its first branch's piece count, computed leaves first.
+    """
+
+    def __init__(self, tree: Tree, splits: Splits, roots: Sequence[int] = (0,),
+                 levels: int | None = None) -> None:
+        route = splits.route
+        first = np.where((route == TEST_RIGHT) | (route == GO_RIGHT), tree.right, tree.left)
+        second = np.where(route == TEST_RIGHT, tree.left, tree.right)
+        tests = (route == TEST_LEFT) | (route == TEST_RIGHT)
+        hole = np.zeros(tree.n_nodes, dtype=bool)
+        by_level: list[np.ndarray] = []
+        frontier = np.asarray(roots, dtype=np.int64)
+        while frontier.size:
+            hole[frontier] = (tree.left[frontier] == LEAF) | (len(by_level) == levels)
+            by_level.append(frontier)
+            walked = frontier[~hole[frontier]]
+            frontier = np.concatenate([first[walked], second[walked[tests[walked]]]])
+        reached = np.concatenate(by_level)
+        test = ~hole & tests
+        pieces = np.zeros(tree.n_nodes, dtype=np.int64)  # a subtree's piece count
+        for nodes in reversed(by_level):
+            own = nodes[test[nodes]]
+            pieces[nodes[hole[nodes]]] = 1
+            passing = nodes[~hole[nodes] & ~test[nodes]]
+            pieces[passing] = pieces[first[passing]]
+            pieces[own] = 5 + pieces[first[own]] + pieces[second[own]]
+        start = np.zeros(tree.n_nodes, dtype=np.int64)
+        start[by_level[0]] = np.concatenate([[0], np.cumsum(pieces[by_level[0]])[:-1]])
+        for nodes in by_level:
+            own = nodes[test[nodes]]
+            passing = nodes[~hole[nodes] & ~test[nodes]]
+            start[first[passing]] = start[passing]
+            start[first[own]] = start[own] + 3
+            start[second[own]] = start[own] + 4 + pieces[first[own]]
+        own = reached[test[reached]]
+        text = np.empty(int(pieces[by_level[0]].sum()), dtype=object)
+        text[start[own]] = splits.opening[own]
+        text[start[own] + 1] = splits.operand[own]
+        text[start[own] + 2] = " THEN "
+        text[start[own] + 3 + pieces[first[own]]] = " ELSE "
+        text[start[own] + pieces[own] - 1] = " END"
+        holes = reached[hole[reached]]
+        by_place = np.argsort(start[holes])
+        self.holes, self._hole_at = holes[by_place], start[holes][by_place]
+        self._text = text
+        self._ends = np.cumsum(pieces[by_level[0]])
+        self._begins = self._ends - pieces[by_level[0]]
+        self._hole_ends = np.searchsorted(self._hole_at, self._ends)
+
+    def render_root(self, i: int, leaf_value: LeafValue, offset: int = 0) -> str:
+        """The text from root i, holes filled with `leaf_value(node - offset)`."""
+        begin, end = self._begins[i], self._ends[i]
+        first, last = (self._hole_ends[i - 1] if i else 0), self._hole_ends[i]
+        text = self._text[begin:end].copy()
+        text[self._hole_at[first:last] - begin] = leaf_literals(
+            leaf_value, self.holes[first:last] - offset)
+        return "".join(text.tolist())
+
+    def render_each(self, leaf_value: LeafValue) -> list[str]:
+        """The text from each root."""
+        return [self.render_root(i, leaf_value) for i in range(len(self._ends))]
 
     def render(self, leaf_value: LeafValue) -> str:
-        out = self.pieces.copy()
-        for index, node in self.holes:
-            out[index] = leaf_value(node)
-        return "".join(out)
+        """The text from the first root (of one root, the whole tree)."""
+        return self.render_root(0, leaf_value)
+
+
+def nested_case(tree: Tree, splits: Splits, leaf_value: LeafValue, root: int = 0,
+                levels: int | None = None) -> str:
+    """Render a tree (or its top `levels` below `root`). A leaf, or a node `levels` below
+    `root`, ends its branch with `leaf_value(node)`; the depth-staged and array shapes use
+    the cut to emit the node id reached."""
+    return CaseText(tree, splits, (root,), levels).render(leaf_value)
+
+
+def every_tree(ctx: Context) -> tuple[CaseText, np.ndarray]:
+    """Every tree's nested CASE laid out in one pass, and each tree's node offset in it
+    (for `CaseText.render_root`)."""
+    stacked, bound, offsets = side_by_side(ctx.forest.trees, ctx.bounds)
+    return CaseText(stacked, split_conditions(ctx, stacked, bound), offsets), offsets
 
 
 class NestedCase(Strategy):
@@ -129,13 +207,13 @@ class NestedCase(Strategy):
     summary = "one nested CASE expression per tree"
 
     def __init__(self) -> None:
-        self._cases: dict[int, CaseText] = {}
+        self._cases: tuple[CaseText, np.ndarray] | None = None
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
-        if tree_index not in self._cases:
-            tree = ctx.forest.trees[tree_index]
-            self._cases[tree_index] = CaseText(tree, split_conditions(ctx, tree_index))
-        return self._cases[tree_index].render(leaf_value)
+        if self._cases is None:
+            self._cases = every_tree(ctx)
+        cases, offsets = self._cases
+        return cases.render_root(tree_index, leaf_value, int(offsets[tree_index]))
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         """Every node written once per output; CASE nests as deep as the deepest tree."""
@@ -148,3 +226,4 @@ class NestedCase(Strategy):
         return Needs(per_output * forest.n_outputs + 200 * forest.n_features + 4000,
                      case_depth=depth, expression_depth=2 * depth + 6,
                      select_columns=forest.n_features + 4)
+

@@ -60,12 +60,14 @@ REQUIRED_KEYS = ("array_from_text", "array_literal", "array_index", "integer_typ
                  "nan_literal", "infinity_literal")
 
 
-def preorder_positions(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
+def preorder_positions(tree: Tree, depth: np.ndarray | None = None,
+                       ) -> tuple[np.ndarray, np.ndarray]:
     """(order, position): order[i] is the node at position i (root first, left subtree
     before right); position inverts it. scikit-learn already numbers trees this way, which
-    is recognised without a per-node walk."""
+    is recognised without a per-node walk. `depth`: the tree's node depths, if known."""
     internal = np.flatnonzero(tree.left != LEAF)
-    if np.array_equal(tree.left[internal], internal + 1) and _right_follows_left(tree):
+    depth = tree.node_depths() if depth is None else depth
+    if np.array_equal(tree.left[internal], internal + 1) and _right_follows_left(tree, depth):
         identity = np.arange(tree.n_nodes, dtype=np.int64)
         return identity, identity
     order = np.array(tree.preorder(), dtype=np.int64)
@@ -74,30 +76,16 @@ def preorder_positions(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
     return order, position
 
 
-def _right_follows_left(tree: Tree) -> bool:
+def _right_follows_left(tree: Tree, depth: np.ndarray) -> bool:
     """Each right child comes right after its left sibling's subtree."""
     internal = np.flatnonzero(tree.left != LEAF)
     if not (np.all(tree.left[internal] > internal) and np.all(tree.right[internal] > internal)):
         return False
     size = np.ones(tree.n_nodes, dtype=np.int64)
-    depth = node_depths(tree)
     for level in range(int(depth.max()), -1, -1):  # children first, one numpy step per level
         nodes = internal[depth[internal] == level]
         size[nodes] = 1 + size[tree.left[nodes]] + size[tree.right[nodes]]
     return bool(np.array_equal(tree.right[internal], internal + 1 + size[internal + 1]))
-
-
-def node_depths(tree: Tree) -> np.ndarray:
-    """Depth of every node, one numpy step per level (no per-node Python loop)."""
-    depth = np.zeros(tree.n_nodes, dtype=np.int64)
-    frontier = np.array([0], dtype=np.int64)
-    level = 0
-    while len(frontier):
-        depth[frontier] = level
-        inner = frontier[tree.left[frontier] != LEAF]
-        frontier = np.concatenate([tree.left[inner], tree.right[inner]])
-        level += 1
-    return depth
 
 
 def _carried(profile: Profile) -> bool:
@@ -121,7 +109,8 @@ class TextArrays(Strategy):
         """(order, position, depth by node id) of tree t, computed once."""
         if t not in self._layouts:
             tree = forest.trees[t]
-            self._layouts[t] = (*preorder_positions(tree), node_depths(tree))
+            depth = tree.node_depths()
+            self._layouts[t] = (*preorder_positions(tree, depth), depth)
         return self._layouts[t]
 
     def _depths(self, forest: Forest) -> list[int]:
@@ -243,13 +232,15 @@ class TextArrays(Strategy):
         return f"CASE WHEN {value} <= {bound} THEN {n} + 1 ELSE {right} END AS {n}"
 
     def _start(self, ctx: Context, t: int) -> str:
-        """Position (1-based) of the node tree t reaches after its top levels: a nested CASE."""
+        """Position (1-based) of the node tree t reaches after its top levels: a nested CASE,
+        or the root's position when no levels are rendered."""
+        if self.top_levels == 0:
+            return "1"
         tree = ctx.forest.trees[t]
         _, position, depth = self._layout(ctx.forest, t)
         top = np.flatnonzero((depth < self.top_levels) & (tree.left != LEAF))
-        conditions = split_conditions(ctx, t, top.tolist())
-        return nested_case(tree, conditions, lambda node: str(int(position[node]) + 1),
-                           levels=self.top_levels)
+        return nested_case(tree, split_conditions(ctx, tree, ctx.bounds[t], top),
+                           lambda node: str(int(position[node]) + 1), levels=self.top_levels)
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _, _ = self._layout(ctx.forest, tree_index)
