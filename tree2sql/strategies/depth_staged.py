@@ -16,6 +16,8 @@ ids are the model's own, so the same SQL can report the leaf each row reached.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 
 from tree2sql.dialects import Profile
@@ -26,6 +28,7 @@ from tree2sql.strategies.base import (
     Needs,
     Strategy,
     feature_bytes,
+    leaf_literals,
     literal_bytes,
 )
 from tree2sql.strategies.nested_case import CaseText, side_by_side, split_conditions
@@ -55,25 +58,37 @@ def levels_per_stage(profile: Profile) -> int:
     return max(1, int(levels))
 
 
-def node_lookup(node: str, ids: list[int], value: LeafValue, levels: int,
+def node_lookup(node: str, ids: Sequence[int], values: Sequence[str], levels: int,
                 otherwise: str | None = None) -> str:
-    """`value(id)` for the id held in column `node` (ids ascending): a binary search at most
-    `levels` CASE levels deep whose last level lists its few ids flat; `otherwise` for an
-    id not listed (None: every row holds one of `ids`).
+    """`values[i]` for the id `ids[i]` held in column `node` (ids ascending): a binary
+    search at most `levels` CASE levels deep whose last level lists its few ids flat;
+    `otherwise` for an id not listed (None: every row holds one of `ids`).
 
     A flat `CASE n WHEN ...` over a fully grown tree's thousand leaves costs a row
     engine one comparison per leaf passed (SQLite: 58 us per tree and row, measured on
     trees of 3,000 nodes); the search costs about log2(leaves) comparisons.
     """
-    if len(ids) == 1 and otherwise is None:
-        return value(ids[0])
-    if levels <= 1 or len(ids) <= FLAT_IDS:
-        branches = " ".join(f"WHEN {n} THEN {value(n)}" for n in ids)
-        return f"CASE {node} {branches}{'' if otherwise is None else f' ELSE {otherwise}'} END"
-    half = len(ids) // 2
-    return (f"CASE WHEN {node} < {ids[half]} THEN "
-            f"{node_lookup(node, ids[:half], value, levels - 1, otherwise)} "
-            f"ELSE {node_lookup(node, ids[half:], value, levels - 1, otherwise)} END")
+    parts: list[str] = []
+    ending = " END" if otherwise is None else f" ELSE {otherwise} END"
+
+    def search(low: int, high: int, levels: int) -> None:
+        if high - low == 1 and otherwise is None:
+            parts.append(values[low])
+        elif levels <= 1 or high - low <= FLAT_IDS:
+            parts.append(f"CASE {node}")
+            for i in range(low, high):
+                parts.extend((" WHEN ", str(ids[i]), " THEN ", values[i]))
+            parts.append(ending)
+        else:
+            half = low + (high - low) // 2
+            parts.append(f"CASE WHEN {node} < {ids[half]} THEN ")
+            search(low, half, levels - 1)
+            parts.append(" ELSE ")
+            search(half, high, levels - 1)
+            parts.append(" END")
+
+    search(0, len(ids), levels)
+    return "".join(parts)
 
 
 def lookup_levels(count: int) -> int:
@@ -157,9 +172,7 @@ class DepthStaged(Strategy):
                 if start == 0:
                     step = texts[0]
                 elif frontier:
-                    walk = dict(zip(frontier, texts, strict=True))
-                    step = node_lookup(node, frontier, walk.__getitem__, dispatch,
-                                       otherwise=node)
+                    step = node_lookup(node, frontier, texts, dispatch, otherwise=node)
                 else:
                     step = node
                 columns.append(f"{step} AS {node}")
@@ -174,10 +187,10 @@ class DepthStaged(Strategy):
         return {ctx.prefix(f"level{start}") for start, _, _ in self._plan(ctx)}
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
-        tree = ctx.forest.trees[tree_index]
-        leaves = [int(n) for n in (tree.left == LEAF).nonzero()[0]]
+        leaves = np.flatnonzero(ctx.forest.trees[tree_index].left == LEAF)
         levels = levels_per_stage(ctx.profile) if searches(ctx.profile) else 1
-        return node_lookup(self._node(ctx, tree_index), leaves, leaf_value, levels)
+        return node_lookup(self._node(ctx, tree_index), leaves.tolist(),
+                           leaf_literals(leaf_value, leaves), levels)
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         k = levels_per_stage(profile)
