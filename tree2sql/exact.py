@@ -88,20 +88,20 @@ def float_texts(values: np.ndarray, style: str = SHORTEST, arithmetic: str = "{t
         raise ValueError(f"unknown literal style {style!r}")
     distinct, where = np.unique(floats.view(np.int64), return_inverse=True)
     distinct = distinct.view(np.float64)
+    before, after = template.split("{text}")
     if style == SHORTEST:
-        texts = np.array([text if "e" in text else text + "e0"
-                          for text in map(repr, distinct.tolist())], dtype=object)
+        texts = [f"{before}{text}{after}" if "e" in text else f"{before}{text}e0{after}"
+                 for text in map(repr, distinct.tolist())]
     else:
-        texts = _exact_arithmetic(distinct, arithmetic.split("{text}"))
-    if template != "{text}":
-        before, after = template.split("{text}")
-        texts = before + texts + after
-    return texts[where].tolist()
+        opening, closing = arithmetic.split("{text}")
+        texts = [f"{before}{text}{after}" if form is None
+                 else f"{before}{opening}{form}{closing}{after}"
+                 for text, form in zip(*_exact_arithmetic(distinct), strict=True)]
+    return np.array(texts, dtype=object)[where].tolist()
 
 
-def _exact_arithmetic(x: np.ndarray, around: list[str]) -> np.ndarray:
-    """x as one IEEE operation on operands every engine reads exactly, each operation
-    between `around`'s two texts.
+def _exact_arithmetic(x: np.ndarray) -> tuple[list[str | None], list[str | None]]:
+    """x as read exactly by every engine: (integer text or None, arithmetic form or None).
 
     Integers below 2**53 and powers of ten up to 1e22 convert exactly, and one IEEE
     multiply or divide is correctly rounded, so `(S / 1eK)` is exactly x when S / 10**K
@@ -109,17 +109,15 @@ def _exact_arithmetic(x: np.ndarray, around: list[str]) -> np.ndarray:
     engine performs, checks each candidate. The smallest such K gives x's shortest
     digits. Other values are written in binary (`_binary_forms`).
     """
-    texts = np.full(len(x), None, dtype=object)
     integral = x == np.trunc(x)
     small = integral & (np.abs(x) < EXACT_INTEGER)
+    texts = np.full(len(x), None, dtype=object)
     texts[small] = [repr(v) + "e0" for v in x[small].tolist()]  # sign of zero kept
     forms = np.full(len(x), None, dtype=object)
     _decimal_forms(x, forms, np.flatnonzero(~integral), divide=True)
     _decimal_forms(x, forms, np.flatnonzero(integral & ~small), divide=False)
     _binary_forms(x, forms, np.flatnonzero(~small & (forms == None)))  # noqa: E711
-    before, after = around
-    texts[~small] = before + forms[~small] + after
-    return texts
+    return texts.tolist(), forms.tolist()
 
 
 def _decimal_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray, divide: bool) -> None:
@@ -140,8 +138,10 @@ def _decimal_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray, divide: boo
     has = found.any(axis=1)
     first = found.argmax(axis=1)[has]
     rows = np.flatnonzero(has)
-    forms[at[has]] = ("(" + integer_texts(digits[rows, first]) + (" / 1e" if divide else " * 1e")
-                      + _POWERS[k[first]] + ")")
+    op = " / " if divide else " * "
+    forms[at[has]] = [f"({d}{op}1e{p})" for d, p in
+                      zip(digits[rows, first].astype(np.int64).tolist(), k[first].tolist(),
+                          strict=True)]
 
 
 def _candidates(v: np.ndarray, scale: np.ndarray, divide: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -158,9 +158,8 @@ def _candidates(v: np.ndarray, scale: np.ndarray, divide: bool) -> tuple[np.ndar
     return digits, found
 
 
-# str(k) for k < 64, and str(2**k): the exponents and factors the forms write.
-_POWERS = np.array([str(k) for k in range(64)], dtype=object)
-_POWERS_OF_TWO = np.array([str(2**k) for k in range(POWER_OF_TWO_STEP + 1)], dtype=object)
+# str(2**k): the factors the binary forms write.
+_POWERS_OF_TWO = [str(2**k) for k in range(POWER_OF_TWO_STEP + 1)]
 
 
 _SMALL_INTEGERS = 1 << 22  # integers a table of texts covers (node ids, slots, digits)
@@ -193,9 +192,9 @@ def _binary_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray) -> None:
     zeros = np.frexp((odd & -odd).astype(np.float64))[1] - 1  # trailing zero bits
     odd, shift = odd >> zeros, power - 53 + zeros
     one_step = (shift != 0) & (np.abs(shift) <= POWER_OF_TWO_STEP)
-    forms[at[one_step]] = ("(CAST(" + integer_texts(odd[one_step]) + " AS REAL)"
-                           + np.where(shift[one_step] > 0, " * ", " / ").astype(object)
-                           + _POWERS_OF_TWO[np.abs(shift[one_step])] + ")")
+    forms[at[one_step]] = [f"(CAST({o} AS REAL){' * ' if s > 0 else ' / '}{_POWERS_OF_TWO[abs(s)]})"
+                           for o, s in zip(odd[one_step].tolist(), shift[one_step].tolist(),
+                                           strict=True)]
     for i in np.flatnonzero(~one_step).tolist():
         steps, op = [f"CAST({odd[i]} AS REAL)"], " * " if shift[i] > 0 else " / "
         for done in range(0, abs(int(shift[i])), POWER_OF_TWO_STEP):
