@@ -24,7 +24,7 @@ from tree2sql.dialects import load_profile
 from tree2sql.engines import connect
 from tree2sql.errors import UserError
 from tree2sql.ingest import ingest
-from tree2sql.strategies import Needs, choose, limit_problem
+from tree2sql.strategies import STRATEGIES, Needs, choose, limit_problem
 from tree2sql.verify import verify
 
 
@@ -99,7 +99,7 @@ def test_statement_bytes_limit_refuses_rather_than_emits():
     large = forest_of_depth(10, trees=60)[1]
     with pytest.raises(UserError, match="statement_bytes"):
         choose(large, capped)
-    assert choose(large, profile)[0].name == "text_arrays"  # with the raised limit
+    assert choose(large, profile)[0].name == "level_arrays"  # with the raised limit
 
 
 def test_expression_depth_limit_duckdb():
@@ -162,15 +162,17 @@ def test_estimates_bound_the_real_statement():
             assert real <= estimate <= 4 * real, (dialect, name, real, estimate)
 
 
-def test_clickhouse_passes_over_text_arrays_when_planning_would_parse_too_much():
+def test_clickhouse_passes_over_array_shapes_when_planning_would_parse_too_much():
     """ClickHouse parses a named constant's text at every reference, so planning grows with
-    trees x levels x nodes; past the profile's constant_elements (measured: 24.9 million
-    elements ran out of memory) the planner takes the next shape instead."""
+    the elements referenced; past the profile's constant_elements (measured: 24.9 million
+    elements ran out of memory) the planner takes the next shape instead. Per-level
+    arrays are referenced by one stage each, whole-tree ones by every stage."""
     profile = load_profile("clickhouse")
     forest = forest_of_depth(6)[1]
     strategy, _ = choose(forest, profile)
     parsed = strategy.needs(forest, profile).constant_elements
-    assert strategy.name == "text_arrays" and parsed > 0
+    whole_trees = STRATEGIES["text_arrays"]().needs(forest, profile).constant_elements
+    assert strategy.name == "level_arrays" and 0 < parsed < whole_trees
     capped = replace(profile, limits={**profile.limits, "constant_elements": parsed - 1})
     strategy, reason = choose(forest, capped)
     assert strategy.name == "nested_case" and "constant_elements" in reason

@@ -141,17 +141,23 @@ def clickhouse():
     engine.close()
 
 
+CLICKHOUSE_SHAPES = ("text_arrays", "level_arrays")
+
+
+@pytest.mark.parametrize("shape", CLICKHOUSE_SHAPES)
 @pytest.mark.parametrize("name", sorted(cases()))
-def test_text_arrays_as_constants_agrees_on_clickhouse(clickhouse, name: str) -> None:
-    """ClickHouse's node arrays as WITH constants, on every bundled dataset (sources in
-    tests/engine_rows.py): forests, boosted trees, regressors, NaN/NULL and edge rows."""
-    report = score(clickhouse, cases()[name], "text_arrays")
-    assert report.strategy == "text_arrays"
+def test_arrays_as_constants_agree_on_clickhouse(clickhouse, name: str, shape: str) -> None:
+    """ClickHouse's node arrays as WITH constants (whole trees, or one level per stage),
+    on every bundled dataset (sources in tests/engine_rows.py): forests, boosted trees,
+    regressors, NaN/NULL and edge rows."""
+    report = score(clickhouse, cases()[name], shape)
+    assert report.strategy == shape
     assert_bar(report, cases()[name])
 
 
-def test_text_arrays_as_constants_agrees_on_grown_and_boosted_trees(clickhouse) -> None:
-    """Trees of uneven depth (leaves loop on themselves while deeper trees walk on) and
+@pytest.mark.parametrize("shape", CLICKHOUSE_SHAPES)
+def test_arrays_as_constants_agree_on_grown_and_boosted_trees(clickhouse, shape: str) -> None:
+    """Trees of uneven depth (leaves keep their node while deeper trees walk on) and
     summed trees with a link function."""
     # breast cancer: Street, Wolberg & Mangasarian (1993), UCI ML repository.
     X, y = load_breast_cancer(return_X_y=True)
@@ -163,20 +169,21 @@ def test_text_arrays_as_constants_agrees_on_grown_and_boosted_trees(clickhouse) 
                     np.zeros(X.shape, dtype=bool))
         depths = {tree.depth() for tree in forest.trees}
         assert len(depths) > 1 or isinstance(model, HistGradientBoostingClassifier)
-        report = score(clickhouse, case, "text_arrays")
+        report = score(clickhouse, case, shape)
         assert report.disagreements == 0 and report.rows == len(X), report.to_text()
 
 
-def test_clickhouse_takes_text_arrays_past_the_parse_tree_limit() -> None:
+def test_clickhouse_takes_level_arrays_past_the_parse_tree_limit() -> None:
     """A forest whose nested CASE would pass ClickHouse's default max_ast_elements (50000,
-    ClickHouse docs, Settings) gets the node arrays as named constants: one literal each,
-    defined once in the WITH clause, nothing cross-joined or carried."""
+    ClickHouse docs, Settings) gets its node arrays as named constants: one literal per
+    tree and level, named in the stage that walks that level, nothing cross-joined or
+    carried."""
     X, y = load_breast_cancer(return_X_y=True)
     forest = ingest(RandomForestClassifier(n_estimators=150, random_state=0).fit(X, y))
     strategy, _ = choose(forest, load_profile("clickhouse"))
-    assert strategy.name == "text_arrays"
+    assert strategy.name == "level_arrays"
     compiled = compile_forest(forest, ScoringRequest("t", ("k",)), "clickhouse")
-    assert compiled.sql.count('AS "__t2s_slot0"') == 1
+    assert compiled.sql.count('AS "__t2s_slot0"') == forest.trees[0].depth()
     assert "CROSS JOIN" not in compiled.sql
     assert "SET max_query_size = 1073741824" in compiled.setup
 

@@ -16,6 +16,7 @@ from tree2sql.forest import Forest
 from tree2sql.strategies.base import Context, Needs, Strategy
 from tree2sql.strategies.case_leaves import CaseLeaves
 from tree2sql.strategies.depth_staged import DepthStaged
+from tree2sql.strategies.level_arrays import LevelArrays
 from tree2sql.strategies.model_table import ModelTable
 from tree2sql.strategies.nested_case import NestedCase
 from tree2sql.strategies.node_arrays import NodeArrays
@@ -23,7 +24,7 @@ from tree2sql.strategies.text_arrays import TextArrays
 
 STRATEGIES: dict[str, type[Strategy]] = {
     cls.name: cls for cls in (NestedCase, NodeArrays, DepthStaged, ModelTable, TextArrays,
-                              CaseLeaves)}
+                              CaseLeaves, LevelArrays)}
 AST_ELEMENTS_PER_BYTE = 1 / 6  # rough parse-tree nodes per statement byte (estimate)
 
 __all__ = ["STRATEGIES", "Context", "Needs", "Strategy", "choose", "limit_problem"]

@@ -167,16 +167,18 @@ class TextArrays(Strategy):
                  + f"\nFROM {ctx.source} CROSS JOIN {model}"),
             ]
             keep = [*ctx.keys, ctx.ok, xs, *carried]
-        # A tree stops stepping once every leaf of it is reached (its own depth), so a
-        # fully grown forest pays per tree for its own depth, not the deepest tree's.
-        depths = self._depths(forest)
         for level in range(1, walked + 1):
-            steps = [self._step(ctx, t) if depth - self.top_levels >= level
-                     else self._name(ctx, "n", t) for t, depth in enumerate(depths)]
             stages.append((ctx.prefix(f"walk{level}"),
-                           "SELECT " + ",\n  ".join([*keep, *steps])
-                           + f"\nFROM {stages[-1][0]}"))
+                           self._walk_stage(ctx, level, keep, stages[-1][0])))
         return stages
+
+    def _walk_stage(self, ctx: Context, level: int, keep: list[str], source: str) -> str:
+        """The stage taking every tree one level down from `source`. A tree stops stepping
+        once every leaf of it is reached (its own depth), so a fully grown forest pays per
+        tree for its own depth, not the deepest tree's."""
+        steps = [self._step(ctx, t) if depth - self.top_levels >= level
+                 else self._name(ctx, "n", t) for t, depth in enumerate(self._depths(ctx.forest))]
+        return "SELECT " + ",\n  ".join([*keep, *steps]) + f"\nFROM {source}"
 
     def constants(self, ctx: Context) -> list[tuple[str, str]]:
         if "constant_alias" not in ctx.profile.raw or self._walked_levels(ctx.forest) == 0:
@@ -273,12 +275,15 @@ class TextArrays(Strategy):
         # trees x levels, not with the nodes.
         elements = 40 * forest.n_features + 20 * len(forest.trees) * (
             self._walked_levels(forest) + 2 ** self.top_levels + 2 + forest.n_outputs)
-        # Named constants are parsed again at each reference: three arrays per step.
-        parsed = 0
-        if "constant_alias" in profile.raw:
-            parsed = sum(3 * max(0, depth - self.top_levels) * tree.n_nodes
-                         for depth, tree in zip(self._depths(forest), forest.trees,
-                                                strict=True))
         return Needs(size, case_depth=levels + 1, expression_depth=2 * levels + 8,
                      select_columns=4 * len(forest.trees) + forest.n_features + 4,
-                     ast_elements=elements, constant_elements=parsed)
+                     ast_elements=elements,
+                     constant_elements=self._parsed_elements(forest, profile))
+
+    def _parsed_elements(self, forest: Forest, profile: Profile) -> int:
+        """Array elements the engine parses while planning: named constants are parsed
+        again at each reference, three arrays per step."""
+        if "constant_alias" not in profile.raw:
+            return 0
+        return sum(3 * max(0, depth - self.top_levels) * tree.n_nodes
+                   for depth, tree in zip(self._depths(forest), forest.trees, strict=True))
