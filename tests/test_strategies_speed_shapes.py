@@ -23,7 +23,8 @@ from tree2sql.dialects import load_profile
 from tree2sql.engines import DuckDBEngine
 from tree2sql.errors import UserError
 from tree2sql.ingest import ingest
-from tree2sql.strategies import choose, text_arrays
+from tree2sql.strategies import STRATEGIES, choose, text_arrays
+from tree2sql.strategies.level_arrays import LevelArrays
 from tree2sql.strategies.text_arrays import TextArrays, preorder_positions
 
 SPEED_SHAPES = ("text_arrays",)
@@ -171,6 +172,20 @@ def test_arrays_as_constants_agree_on_grown_and_boosted_trees(clickhouse, shape:
         assert len(depths) > 1 or isinstance(model, HistGradientBoostingClassifier)
         report = score(clickhouse, case, shape)
         assert report.disagreements == 0 and report.rows == len(X), report.to_text()
+
+
+@pytest.mark.parametrize("top_levels", [1, 3])
+def test_level_arrays_agree_below_a_nested_case_top(clickhouse, monkeypatch: pytest.MonkeyPatch,
+                                                    top_levels: int) -> None:
+    """Rows start where a nested CASE of the top levels leaves them (a breadth-first
+    position), then walk the per-level arrays. Breast cancer Wisconsin: Street, Wolberg &
+    Mangasarian (1993), UCI; rows with NaN, NULL and float32 boundary values."""
+    monkeypatch.setattr(LevelArrays.__init__, "__defaults__", (top_levels,))
+    assert STRATEGIES["level_arrays"]().top_levels == top_levels
+    case = cases()["breast_cancer_missing"]
+    report = score(clickhouse, case, "level_arrays")
+    assert report.strategy == "level_arrays"
+    assert_bar(report, case)
 
 
 def test_clickhouse_takes_level_arrays_past_the_parse_tree_limit() -> None:

@@ -153,26 +153,31 @@ def require_keys(profile: Profile, keys: tuple[str, ...], shape: str) -> None:
                         "use another --strategy, or add the keys to the dialect profile")
 
 
-def numbers_text(values: np.ndarray) -> str:
-    """Comma-separated numbers: integers as they are, doubles as their shortest round-trip
+def number_texts(values: np.ndarray) -> list[str]:
+    """Each number's text: integers as they are, doubles as their shortest round-trip
     repr, +0.0 (the placeholder filling about half of a node array) as "0". Formatting is
     most of the compile time, so each distinct double is formatted once (leaf values
     repeat) and integers come from a table of their texts."""
     if values.dtype.kind != "f":
-        return ",".join(integer_texts(values).tolist())
+        return integer_texts(values).tolist()
     items = np.full(len(values), "0", dtype=object)
     written = (values != 0) | np.signbit(values)
     distinct, where = np.unique(values[written].view(np.int64), return_inverse=True)
     items[written] = np.array(list(map(float.__repr__, distinct.view(np.float64).tolist())),
                               dtype=object)[where]
-    return ",".join(items.tolist())
+    return items.tolist()
 
 
 def array_from_numbers(profile: Profile, values: np.ndarray, element: str) -> str:
     """A constant array of `element`s parsed from one string literal (profile keys
     `array_text`, default `[{items}]`, and `array_from_text`): one constant for the
     engine to plan, however many numbers it holds."""
-    text = profile.raw.get("array_text", "[{items}]").format(items=numbers_text(values))
+    return array_from_texts(profile, number_texts(values), element)
+
+
+def array_from_texts(profile: Profile, items: list[str], element: str) -> str:
+    """`array_from_numbers` over numbers already written (`number_texts`)."""
+    text = profile.raw.get("array_text", "[{items}]").format(items=",".join(items))
     return profile.raw["array_from_text"].format(text=profile.string(text), element=element)
 
 
