@@ -21,7 +21,7 @@ from tree2sql.verify import Report, verify
 
 KEY = "row_id"
 TABLE = "rows_to_score"
-STRATEGIES = ("nested_case", "node_arrays")
+STRATEGIES = ("nested_case", "node_arrays", "leaf_counts")
 
 
 def load_rows(engine: DuckDBEngine, X: np.ndarray, names: Sequence[str], *,

@@ -152,7 +152,8 @@ def test_sqlite_factors_out_no_threshold(big_forest, tmp_path):
     request = ScoringRequest(table="t", keys=(KEY,))
     small = compile_forest(ingest(one_tree), request, "sqlite")
     big = compile_forest(forest, request, "sqlite")
-    assert big.strategy == "nested_case"
+    assert big.strategy == "leaf_counts"  # nested CASE walks, once per tree
+    assert big.sql.count('AS "__t2s_code') == len(forest.trees)
     names = list(forest.feature_names)
     # ~9,000 thresholds in the big forest: factored, each would add an opcode here.
     assert _prologue_ops(big.sql, names) <= _prologue_ops(small.sql, names) + 5

@@ -175,6 +175,8 @@ class _QueryBuilder:
         self.features = [self.internal(f"f{i}")
                          for i in range(forest.n_features + len(forest.derived))]
         self._built: Context | None = None
+        self._checked_columns: list[str] = []  # the columns of the checked input stage
+        self._group_stages: set[str] = set()  # the strategy's stages between partial sums
 
     def render(self, header: str, scores: list[str], label: str | None,
                progress: Callable[[int], None] | None, reasons: Sequence[str] = ()) -> str:
@@ -183,7 +185,7 @@ class _QueryBuilder:
         ctx = self._context()
         ctes = [*self._input_stages(), *self.strategy.stages(ctx)]
         sums = self._sums(ctx, progress)
-        sum_stages = self._partial_sum_stages(sums, ctes[-1][0])
+        sum_stages = self._partial_sum_stages(sums, ctes[-1][0], grouped=True)
         ctes += sum_stages
         explain = ReasonSql(self.forest, p, self.internal, self.request.reasons) \
             if reasons else None
@@ -219,7 +221,7 @@ class _QueryBuilder:
         named = set(p.raw.get("fenced_stages", ()))  # "sums": every partial-sum stage
         fenced |= {self.internal(name) for name in named - {"sums"}}
         fenced |= {name for name, _ in sum_stages} if "sums" in named else set()
-        fenced |= self.strategy.fenced_stages(ctx)
+        fenced |= self.strategy.fenced_stages(ctx) | self._group_stages
         if explain:
             ctes += explain.stages(last, lambda per_class: self._argmax("p", per_class))
             fenced |= set(explain.fenced)
@@ -287,6 +289,8 @@ class _QueryBuilder:
             values.append(f"CASE WHEN {refused} THEN 1 ELSE 0 END")
             inputs = [*inputs, self.internal("refused")]
         cast = [f"{value} AS {alias}" for value, alias in zip(values, inputs, strict=True)]
+        self._checked_columns = [*self.keys, *inputs, self.internal("ok"),
+                                 *self.features[self.forest.n_features:]]
         return (f"SELECT {self._select_list(self.keys + cast)}\n"
                 f"FROM {p.qualified(self.request.table)}")
 
@@ -333,19 +337,23 @@ class _QueryBuilder:
                 progress(1)
         return terms
 
-    def _partial_sum_stages(self, terms: list[list[str]], source: str,
-                            tag: str = "") -> list[tuple[str, str]]:
+    def _partial_sum_stages(self, terms: list[list[str]], source: str, tag: str = "",
+                            grouped: bool = False) -> list[tuple[str, str]]:
         """Sum left to right in tree order, the profile's `trees_per_stage` per CTE stage.
 
         One long `a + b + c ...` is as deep as it is long, and engines cap expression
         depth (DuckDB: 1000); a row engine also runs faster when each fenced stage's code
         stays small (SQLite, see its profile). Carrying a running sum from stage to stage
-        keeps the exact left-to-right order of the library's accumulation.
+        keeps the exact left-to-right order of the library's accumulation. `grouped`: put
+        the strategy's `group_stage` for each stage's trees just before it (the sums then
+        keep only the checked input's columns, not what the group stage computed).
         On return each `terms[k]` is replaced by [final sum expression].
         """
         stages: list[tuple[str, str]] = []
         n_trees, per_stage = len(terms[0]), self.profile.trees_per_stage
-        if n_trees <= per_stage:
+        ctx = self._context()
+        grouped = grouped and self.strategy.group_stage(ctx, range(0), source) is not None
+        if n_trees <= per_stage and not grouped:
             for column in terms:
                 column[:] = [PLUS.join(column)]
             return stages
@@ -359,8 +367,16 @@ class _QueryBuilder:
                 name = self.internal(f"{tag}s{stage}_{k}")
                 items.append(f"{PLUS.join(chunk)} AS {name}")
                 running[k] = name
+            kept, read = f"{source}.*", source
+            if grouped:
+                trees = range(start, min(start + per_stage, n_trees))
+                group = self.strategy.group_stage(ctx, trees, source)
+                assert group is not None
+                stages.append(group)
+                self._group_stages.add(group[0])
+                kept, read = self._select_list(self._checked_columns), group[0]
             name = self.internal(f"{tag}sum{stage}")
-            body = f"SELECT {source}.*,\n  {self._select_list(items)}\nFROM {source}"
+            body = f"SELECT {kept},\n  {self._select_list(items)}\nFROM {read}"
             stages.append((name, body))
             source = name
         for k, column in enumerate(terms):

@@ -162,22 +162,22 @@ def _candidates(v: np.ndarray, scale: np.ndarray, divide: bool) -> tuple[np.ndar
 _POWERS_OF_TWO = [str(2**k) for k in range(POWER_OF_TWO_STEP + 1)]
 
 
-_SMALL_INTEGERS = 1 << 22  # integers a table of texts covers (node ids, slots, digits)
 _integer_table = np.array(["0"], dtype=object)
 
 
 def integer_texts(values: np.ndarray) -> np.ndarray:
-    """str() of each integer, as an object array: small non-negative ones from a table
-    of their texts, grown on demand (node arrays hold mostly such numbers)."""
+    """str() of each integer, as an object array: small non-negative ones (node ids,
+    slots) from a table of their texts, grown on demand but never far past the numbers
+    asked for at once."""
     global _integer_table
     values = np.asarray(values).astype(np.int64)
     if not values.size:
         return np.empty(0, dtype=object)
     low, high = int(values.min()), int(values.max())
-    if low < 0 or high >= _SMALL_INTEGERS:
+    if low < 0 or high >= max(len(_integer_table), 4 * len(values) + 4096):
         return np.array(list(map(str, values.tolist())), dtype=object)
     if high >= len(_integer_table):
-        size = min(_SMALL_INTEGERS, max(high + 1, 2 * len(_integer_table)))
+        size = max(high + 1, 2 * len(_integer_table))
         _integer_table = np.array(list(map(str, range(size))), dtype=object)
     return _integer_table[values]
 

@@ -98,6 +98,9 @@ class Tree:
     right: np.ndarray  # int64, right child or LEAF
     missing_left: np.ndarray  # bool
     value: np.ndarray  # float64, shape (n_nodes, n_outputs)
+    # float64, the (weighted) training samples that reached each node, where the library
+    # records them: a forest's class fractions are counts over this (strategies/leaf_counts)
+    samples: np.ndarray | None = None
 
     @property
     def n_nodes(self) -> int:

@@ -60,6 +60,7 @@ def _read_tree(tree: Any, task: Task) -> Tree:
         right=tree.children_right.astype(np.int64),
         missing_left=missing,
         value=np.ascontiguousarray(value),
+        samples=tree.weighted_n_node_samples.astype(np.float64),
     )
 
 

@@ -16,6 +16,7 @@ from tree2sql.forest import Forest
 from tree2sql.strategies.base import Context, Needs, Strategy
 from tree2sql.strategies.case_leaves import CaseLeaves
 from tree2sql.strategies.depth_staged import DepthStaged
+from tree2sql.strategies.leaf_counts import LeafCounts
 from tree2sql.strategies.level_arrays import LevelArrays
 from tree2sql.strategies.model_table import ModelTable
 from tree2sql.strategies.nested_case import NestedCase
@@ -24,7 +25,7 @@ from tree2sql.strategies.text_arrays import TextArrays
 
 STRATEGIES: dict[str, type[Strategy]] = {
     cls.name: cls for cls in (NestedCase, NodeArrays, DepthStaged, ModelTable, TextArrays,
-                              CaseLeaves, LevelArrays)}
+                              CaseLeaves, LevelArrays, LeafCounts)}
 AST_ELEMENTS_PER_BYTE = 1 / 6  # rough parse-tree nodes per statement byte (estimate)
 
 __all__ = ["STRATEGIES", "Context", "Needs", "Strategy", "choose", "limit_problem"]
@@ -32,6 +33,8 @@ __all__ = ["STRATEGIES", "Context", "Needs", "Strategy", "choose", "limit_proble
 
 def limit_problem(needs: Needs, forest: Forest, profile: Profile) -> str | None:
     """The first profile limit the shape would break, as a sentence; None when it fits."""
+    if needs.unsuitable:
+        return needs.unsuitable
     lim, per_stage = profile.limit, profile.trees_per_stage
     sum_stages = math.ceil(len(forest.trees) / per_stage)
     checks = [

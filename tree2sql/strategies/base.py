@@ -113,6 +113,7 @@ class Needs:
     inline: bool = True
     ast_elements: int | None = None
     constant_elements: int = 0  # array elements the engine reads while planning
+    unsuitable: str | None = None  # why the shape cannot express this model at all
 
 
 @dataclass
@@ -228,3 +229,10 @@ class Strategy(ABC):
     def setup_statements(self, ctx: Context) -> list[str]:
         """Statements to run, in order, before the SELECT (e.g. create and fill a table)."""
         return []
+
+    def group_stage(self, ctx: Context, trees: range, source: str) -> tuple[str, str] | None:
+        """A stage (name, SELECT body over `source`, keeping its columns) that the
+        compiler puts just before the partial sum of `trees`, for terms that read what it
+        computes; the sum then keeps only the columns before it, and the stage is fenced.
+        None: the terms read the strategy's own stages."""
+        return None
