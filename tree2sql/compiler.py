@@ -176,7 +176,7 @@ class _QueryBuilder:
                          for i in range(forest.n_features + len(forest.derived))]
         self._built: Context | None = None
         self._checked_columns: list[str] = []  # the columns of the checked input stage
-        self._group_stages: set[str] = set()  # the strategy's stages between partial sums
+        self._group_stages: set[str] = set()  # stages of `_grouped_sums`, all fenced
 
     def render(self, header: str, scores: list[str], label: str | None,
                progress: Callable[[int], None] | None, reasons: Sequence[str] = ()) -> str:
@@ -344,40 +344,66 @@ class _QueryBuilder:
         One long `a + b + c ...` is as deep as it is long, and engines cap expression
         depth (DuckDB: 1000); a row engine also runs faster when each fenced stage's code
         stays small (SQLite, see its profile). Carrying a running sum from stage to stage
-        keeps the exact left-to-right order of the library's accumulation. `grouped`: put
-        the strategy's `group_stage` for each stage's trees just before it (the sums then
-        keep only the checked input's columns, not what the group stage computed).
+        keeps the exact left-to-right order of the library's accumulation. `grouped`: the
+        strategy computes columns per group of trees (`group_columns`); see `_grouped_sums`.
         On return each `terms[k]` is replaced by [final sum expression].
         """
         stages: list[tuple[str, str]] = []
         n_trees, per_stage = len(terms[0]), self.profile.trees_per_stage
-        ctx = self._context()
-        grouped = grouped and self.strategy.group_stage(ctx, range(0), source) is not None
-        if n_trees <= per_stage and not grouped:
+        if grouped and self.strategy.group_columns(self._context(), range(0)) is not None:
+            return self._grouped_sums(terms, source)
+        if n_trees <= per_stage:
             for column in terms:
                 column[:] = [PLUS.join(column)]
             return stages
         running: list[str | None] = [None] * len(terms)
         for stage, start in enumerate(range(0, n_trees, per_stage)):
-            items = []
-            for k, column in enumerate(terms):
-                chunk = column[start:start + per_stage]
-                if running[k] is not None:
-                    chunk = [running[k], *chunk]
-                name = self.internal(f"{tag}s{stage}_{k}")
-                items.append(f"{PLUS.join(chunk)} AS {name}")
-                running[k] = name
-            kept, read = f"{source}.*", source
-            if grouped:
-                trees = range(start, min(start + per_stage, n_trees))
-                group = self.strategy.group_stage(ctx, trees, source)
-                assert group is not None
-                stages.append(group)
-                self._group_stages.add(group[0])
-                kept, read = self._select_list(self._checked_columns), group[0]
+            items = self._running_sums(terms, running, range(start, start + per_stage),
+                                       stage, tag)
             name = self.internal(f"{tag}sum{stage}")
-            body = f"SELECT {kept},\n  {self._select_list(items)}\nFROM {read}"
+            body = f"SELECT {source}.*,\n  {self._select_list(items)}\nFROM {source}"
             stages.append((name, body))
+            source = name
+        for k, column in enumerate(terms):
+            column[:] = [running[k]]
+        return stages
+
+    def _running_sums(self, terms: list[list[str]], running: list[str | None], trees: range,
+                      stage: int, tag: str = "") -> list[str]:
+        """Select items adding `trees`' terms to each output's running sum (renamed)."""
+        items = []
+        for k, column in enumerate(terms):
+            chunk = column[trees.start:trees.stop]
+            if running[k] is not None:
+                chunk = [running[k], *chunk]
+            name = self.internal(f"{tag}s{stage}_{k}")
+            items.append(f"{PLUS.join(chunk)} AS {name}")
+            running[k] = name
+        return items
+
+    def _grouped_sums(self, terms: list[list[str]], source: str) -> list[tuple[str, str]]:
+        """Stages that each compute one group's columns (the strategy's `group_columns`)
+        and add the previous group's terms, which read those columns, to the running sums;
+        a group's columns are dropped once summed. One stage more than groups; all fenced.
+        Each stage keeps the checked input's columns, so the strategy has no stages of its
+        own here."""
+        ctx, per_stage = self._context(), self.profile.trees_per_stage
+        n_trees = len(terms[0])
+        starts = list(range(0, n_trees, per_stage))
+        running: list[str | None] = [None] * len(terms)
+        stages: list[tuple[str, str]] = []
+        for stage in range(len(starts) + 1):
+            items = [*self._checked_columns, *(r for r in running if r is not None)]
+            if stage:  # the previous group's terms, over its columns in `source`
+                done = range(starts[stage - 1], starts[stage - 1] + per_stage)
+                items[len(self._checked_columns):] = self._running_sums(terms, running, done,
+                                                                        stage - 1)
+            if stage < len(starts):
+                items += self.strategy.group_columns(
+                    ctx, range(starts[stage], min(starts[stage] + per_stage, n_trees))) or []
+            name = self.internal(f"sum{stage - 1}" if stage == len(starts) else f"group{stage}")
+            stages.append((name, f"SELECT {self._select_list(items)}\nFROM {source}"))
+            self._group_stages.add(name)
             source = name
         for k, column in enumerate(terms):
             column[:] = [running[k]]

@@ -230,9 +230,9 @@ class Strategy(ABC):
         """Statements to run, in order, before the SELECT (e.g. create and fill a table)."""
         return []
 
-    def group_stage(self, ctx: Context, trees: range, source: str) -> tuple[str, str] | None:
-        """A stage (name, SELECT body over `source`, keeping its columns) that the
-        compiler puts just before the partial sum of `trees`, for terms that read what it
-        computes; the sum then keeps only the columns before it, and the stage is fenced.
-        None: the terms read the strategy's own stages."""
+    def group_columns(self, ctx: Context, trees: range) -> list[str] | None:
+        """Select items (over the checked input) that the terms of `trees` read, which the
+        compiler computes in a fenced stage next to those trees' partial sum and drops
+        after it (tree2sql.compiler `_grouped_sums`). None: the terms read the strategy's
+        own stages."""
         return None

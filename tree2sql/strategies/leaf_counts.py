@@ -11,8 +11,8 @@ can end in the integer
 
 and class k's value is `CAST((code >> kb) & m AS REAL) / (code & m)` (class 0: N minus the
 others), the same correctly rounded division. The codes of each group of trees are computed
-in a fenced stage just before that group's partial sums (Strategy.group_stage), and are not
-carried further: storing them all in one stage cost more than the second walk saved.
+in a fenced stage and summed in the next (Strategy.group_columns), and not carried further:
+storing them all in one stage cost more than the second walk saved.
 
 Suits a forest whose every leaf passes that check exactly (the compiler verifies it with
 numpy's own division; sample weights that are not whole numbers fail it) and whose counts
@@ -82,17 +82,15 @@ class LeafCounts(NestedCase):
     def _code(self, ctx: Context, t: int) -> str:
         return ctx.prefix(f"code{t}")
 
-    def group_stage(self, ctx: Context, trees: range, source: str) -> tuple[str, str] | None:
+    def group_columns(self, ctx: Context, trees: range) -> list[str] | None:
         packed = self._packed(ctx.forest)
         if isinstance(packed, str):
             return None
         if self._cases is None:
             self._cases = every_tree(ctx)
         walks, offsets = self._cases
-        codes = [f"{walks.render_root(t, integer_texts(packed[0][t]).__getitem__, int(offsets[t]))}"
-                 f" AS {self._code(ctx, t)}" for t in trees]
-        body = f"SELECT {source}.*,\n  " + ",\n  ".join(codes) + f"\nFROM {source}"
-        return ctx.prefix(f"codes{trees.start}"), body
+        return [f"{walks.render_root(t, integer_texts(packed[0][t]).__getitem__, int(offsets[t]))}"
+                f" AS {self._code(ctx, t)}" for t in trees]
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         packed = self._packed(ctx.forest)
