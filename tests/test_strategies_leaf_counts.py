@@ -19,6 +19,7 @@ from sklearn.tree import DecisionTreeClassifier
 
 from tree2sql.compiler import Combine, ScoringRequest, compile_forest
 from tree2sql.dialects import load_profile
+from tree2sql.errors import UserError
 from tree2sql.forest import LEAF
 from tree2sql.ingest import ingest
 from tree2sql.strategies import choose
@@ -108,3 +109,10 @@ def test_votes_and_forced_use_fall_back_to_walks(sqlite) -> None:
     assert report.disagreements == 0 and report.rows == len(case.X), report.to_text()
     regression = score(sqlite, cases()["diabetes"], "leaf_counts")
     assert_bar(regression, cases()["diabetes"])
+
+
+def test_forced_where_the_dialect_lacks_integer_bits() -> None:
+    """A clear error naming the profile key, not SQL with operators the engine lacks."""
+    with pytest.raises(UserError, match="integer_bits"):
+        compile_forest(cases()["iris"].forest,
+                       ScoringRequest("t", (KEY,), strategy="leaf_counts"), "oracle")

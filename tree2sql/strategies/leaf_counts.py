@@ -14,10 +14,11 @@ others), the same correctly rounded division. The codes of each group of trees a
 in a fenced stage and summed in the next (Strategy.group_columns), and not carried further:
 storing them all in one stage cost more than the second walk saved.
 
-Suits a forest whose every leaf passes that check exactly (the compiler verifies it with
-numpy's own division; sample weights that are not whole numbers fail it) and whose counts
-fit 62 bits; other models, and leaf values that are not class fractions (votes, node ids,
-reason codes), get the plain nested CASE walk.
+Profile key: `integer_bits = true` where the engine has the integer operators `>>` and `&`
+(SQLite, DuckDB). Suits a forest whose every leaf passes that check exactly (the compiler
+verifies it with numpy's own division; sample weights that are not whole numbers fail it)
+and whose counts fit 62 bits; other models, and leaf values that are not class fractions
+(votes, node ids, reason codes), get the plain nested CASE walk.
 """
 
 from __future__ import annotations
@@ -27,7 +28,7 @@ import numpy as np
 from tree2sql.dialects import Profile
 from tree2sql.exact import integer_texts
 from tree2sql.forest import LEAF, Forest
-from tree2sql.strategies.base import Context, LeafLiterals, LeafValue, Needs
+from tree2sql.strategies.base import Context, LeafLiterals, LeafValue, Needs, require_keys
 from tree2sql.strategies.nested_case import NestedCase, every_tree
 
 PACKED_BITS = 62  # bits of a signed 64-bit integer the packed counts may use
@@ -109,6 +110,7 @@ class LeafCounts(NestedCase):
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         """One walk per tree (nested_case walks once per output) and a short decode per
         tree and output."""
+        require_keys(profile, ("integer_bits",), self.name)
         walks = super().needs(forest, profile)
         packed = self._packed(forest)
         return Needs(walks.statement_bytes // max(1, forest.n_outputs)
