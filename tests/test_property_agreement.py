@@ -9,7 +9,7 @@ subnormals, values beyond float32 range and infinities (refused by the library, 
 scores are expected), integers beyond 2**24 (where float32 has gaps), NaN and SQL NULL.
 
 SQL and model are compared by tree2sql.verify.verify on DuckDB (text_arrays, its profile's
-first, nested_case and node_arrays), SQLite (nested_case, its first) and PostgreSQL
+first, nested_case and node_arrays), SQLite (leaf_counts, its first, and nested_case) and PostgreSQL
 (case_leaves, its first, and nested_case) with the library's own predictions as the
 reference: zero disagreements of any kind. Every verified row counts once per tree; the
 total is printed and must reach 10**7.
@@ -299,7 +299,7 @@ def duckdb_bench():
 @pytest.fixture(scope="module")
 def sqlite_bench(tmp_path_factory):
     engine = connect(f"sqlite:///{tmp_path_factory.mktemp('prop') / 'rows.db'}")
-    yield Bench("sqlite", engine, ("nested_case",))
+    yield Bench("sqlite", engine, ("leaf_counts", "nested_case"))
     engine.close()
 
 
