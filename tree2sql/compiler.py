@@ -393,11 +393,10 @@ class _QueryBuilder:
         running: list[str | None] = [None] * len(terms)
         stages: list[tuple[str, str]] = []
         for stage in range(len(starts) + 1):
-            items = [*self._checked_columns, *(r for r in running if r is not None)]
+            items = list(self._checked_columns)
             if stage:  # the previous group's terms, over its columns in `source`
                 done = range(starts[stage - 1], starts[stage - 1] + per_stage)
-                items[len(self._checked_columns):] = self._running_sums(terms, running, done,
-                                                                        stage - 1)
+                items += self._running_sums(terms, running, done, stage - 1)
             if stage < len(starts):
                 items += self.strategy.group_columns(
                     ctx, range(starts[stage], min(starts[stage] + per_stage, n_trees))) or []

@@ -76,20 +76,20 @@ class LiteralTable:
     def __init__(self, make: Callable[[np.ndarray], list[str]], values: np.ndarray) -> None:
         floats = np.asarray(values, dtype=np.float64).ravel()
         self._make, self._values = make, floats[np.isfinite(floats)]
-        self._bits: np.ndarray | None = None
-        self._texts = np.empty(0, dtype=object)
+        self._table: tuple[np.ndarray, np.ndarray] | None = None  # (bit patterns, texts)
 
     def __call__(self, values: np.ndarray) -> list[str]:
-        if self._bits is None:
-            self._bits = np.unique(self._values.view(np.int64))
-            self._texts = np.array(self._make(self._bits.view(np.float64)), dtype=object)
+        if self._table is None:
+            known = np.unique(self._values.view(np.int64))
+            self._table = known, np.array(self._make(known.view(np.float64)), dtype=object)
+        known, known_texts = self._table
         floats = np.asarray(values, dtype=np.float64).ravel()
-        bits = floats.view(np.int64)
-        at = np.minimum(np.searchsorted(self._bits, bits), len(self._bits) - 1)
-        if not len(self._bits):
+        if not len(known):
             return self._make(floats)
-        texts = self._texts[at]
-        unknown = np.flatnonzero(self._bits[at] != bits)
+        bits = floats.view(np.int64)
+        at = np.minimum(np.searchsorted(known, bits), len(known) - 1)
+        texts = known_texts[at]
+        unknown = np.flatnonzero(known[at] != bits)
         if unknown.size:
             texts[unknown] = self._make(floats[unknown])
         return texts.tolist()

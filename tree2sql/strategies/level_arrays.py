@@ -9,13 +9,14 @@ next to each other) and every level has its own small arrays, defined by a WITH 
 stage that walks that level:
 
     n = CASE WHEN n <= S THEN n
-             ELSE left[n - S] + CASE WHEN xs[slot[n - S]] <= bound[n - S] THEN 0 ELSE 1 END
+             ELSE right[n - S] - CASE WHEN xs[slot[n - S]] <= bound[n - S] THEN 1 ELSE 0 END
              END
 
-where S counts the nodes of the levels above; each array is read once. A row whose tree
-reached a leaf on an earlier level keeps its node (n <= S); a leaf on this level has
-left = n - 1 and the undecided slot, so it keeps its node too. Everything else (the row
-array, missing values, leaf values by position) is text_arrays'.
+where S counts the nodes of the levels above, and a left child sits just before its right
+sibling; each array is read once. A row whose tree reached a leaf on an earlier level keeps
+its node (n <= S); a leaf on this level is its own right child with the undecided slot, so
+it keeps its node too. The arrays themselves, the row array, missing values and leaf values
+by position are text_arrays'.
 
 Profile keys: text_arrays' keys and `constant_alias` over {value} and {name}. Spark, which
 has no named constants, ran this layout with each array written where it is read at half
@@ -69,30 +70,18 @@ class LevelArrays(TextArrays):
 
     def _levels(self, ctx: Context, t: int) -> tuple[np.ndarray, dict[str, list[str]]]:
         """Where each level starts among tree t's breadth-first positions, and the texts of
-        its slot, bound and left-child numbers by position (written once per tree; a
-        level's arrays are slices)."""
+        its node arrays by position (written once per tree; a level's arrays are slices)."""
         if t not in self._texts:
-            tree, k = ctx.forest.trees[t], len(ctx.features)
-            order, position, depth = self._layout(ctx.forest, t)
-            leaf = tree.left[order] == LEAF
-            goes_left = tree.missing_left[order] & ctx.forest.accepts_missing
-            own = np.arange(len(order))  # 0-based: a leaf's left child is itself - 1
-            numbers = {
-                "slot": np.where(leaf, 2 * k + 1,
-                                 tree.feature[order] + 1 + np.where(goes_left, 0, k)),
-                "bound": np.where(leaf, 0.0, ctx.bounds[t][order]),
-                "left": np.where(leaf, own, position[np.where(leaf, 0, tree.left[order])] + 1),
-            }
+            order, _, depth = self._layout(ctx.forest, t)
             starts = np.searchsorted(depth[order], np.arange(int(depth.max()) + 2))
-            self._texts[t] = starts, {what: number_texts(values)
-                                      for what, values in numbers.items()}
+            self._texts[t] = starts, {what: number_texts(values) for what, values
+                                      in self._node_columns(ctx, t).items()}
         return self._texts[t]
 
     def _walk_stage(self, ctx: Context, level: int, keep: list[str], source: str) -> str:
         p = ctx.profile
         tree_level = self.top_levels + level - 1
-        element = {"slot": p.raw["integer_type"], "bound": p.double_type,
-                   "left": p.raw["integer_type"]}
+        element = self._elements(p)
         constants, steps = [], []
         for t, depth in enumerate(self._depths(ctx.forest)):
             n = self._name(ctx, "n", t)
@@ -107,9 +96,9 @@ class LevelArrays(TextArrays):
                 for what, items in texts.items()]
             i = f"{n} - {above}"
             value = self._index(ctx, ctx.prefix("xs"), self._index(ctx, read["slot"], i))
-            bound, left = (self._index(ctx, read[what], i) for what in ("bound", "left"))
-            steps.append(f"CASE WHEN {n} <= {above} THEN {n} ELSE {left} + "
-                         f"CASE WHEN {value} <= {bound} THEN 0 ELSE 1 END END AS {n}")
+            bound, right = (self._index(ctx, read[what], i) for what in ("bound", "right"))
+            steps.append(f"CASE WHEN {n} <= {above} THEN {n} ELSE {right} - "
+                         f"CASE WHEN {value} <= {bound} THEN 1 ELSE 0 END END AS {n}")
         named = "WITH " + ",\n".join(constants) + "\n" if constants else ""
         return named + "SELECT " + ",\n  ".join([*keep, *steps]) + f"\nFROM {source}"
 

@@ -178,21 +178,13 @@ class CaseText:
             leaf_value, self.holes[first:last] - offset)
         return "".join(text.tolist())
 
-    def render_each(self, leaf_value: LeafValue) -> list[str]:
-        """The text from each root."""
-        return [self.render_root(i, leaf_value) for i in range(len(self._ends))]
-
-    def render(self, leaf_value: LeafValue) -> str:
-        """The text from the first root (of one root, the whole tree)."""
-        return self.render_root(0, leaf_value)
-
 
 def nested_case(tree: Tree, splits: Splits, leaf_value: LeafValue, root: int = 0,
                 levels: int | None = None) -> str:
     """Render a tree (or its top `levels` below `root`). A leaf, or a node `levels` below
     `root`, ends its branch with `leaf_value(node)`; the depth-staged and array shapes use
     the cut to emit the node id reached."""
-    return CaseText(tree, splits, (root,), levels).render(leaf_value)
+    return CaseText(tree, splits, (root,), levels).render_root(0, leaf_value)
 
 
 def every_tree(ctx: Context) -> tuple[CaseText, np.ndarray]:

@@ -187,15 +187,20 @@ class TextArrays(Strategy):
 
     def _model_arrays(self, ctx: Context) -> list[tuple[str, str]]:
         """(name, array from text) for every tree's slot, bound and right-child arrays."""
-        p = ctx.profile
-        element = {"slot": p.raw["integer_type"], "bound": p.double_type,
-                   "right": p.raw["integer_type"]}
+        element = self._elements(ctx.profile)
         return [(self._name(ctx, what, t), self._array(ctx, values, element[what]))
                 for t in range(len(ctx.forest.trees))
                 for what, values in self._node_columns(ctx, t).items()]
 
+    @staticmethod
+    def _elements(profile: Profile) -> dict[str, str]:
+        """SQL element type of each node array."""
+        return {"slot": profile.raw["integer_type"], "bound": profile.double_type,
+                "right": profile.raw["integer_type"]}
+
     def _node_columns(self, ctx: Context, t: int) -> dict[str, np.ndarray]:
-        """Tree t's slot, bound and right-child arrays, by 1-based pre-order position."""
+        """Tree t's slot, bound and right-child arrays, by 1-based position in its layout
+        (pre-order here; a leaf's right child is itself)."""
         tree, k = ctx.forest.trees[t], len(ctx.features)
         order, position, _ = self._layout(ctx.forest, t)
         leaf = tree.left[order] == LEAF
