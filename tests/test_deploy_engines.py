@@ -26,6 +26,7 @@ from sklearn.datasets import load_iris
 from sklearn.ensemble import RandomForestClassifier
 
 from tree2sql.cli import cli
+from tree2sql.dialects import load_profile
 
 IRIS = load_iris(as_frame=True)  # Fisher 1936, UCI ML repository
 FEATURES = list(IRIS.data.columns)  # "sepal length (cm)", ...: spaces and brackets
@@ -290,6 +291,9 @@ def test_dry_run_prints_statements_and_changes_nothing(target, models):
         result = deploy(target, path, "table", "iris_table", "--dry-run")
         assert result.exit_code == 0, result.output
         assert "CREATE TABLE" in result.output and "tree2sql_deployments" in result.output
+        # The profile's session settings (PostgreSQL: SET jit = off) come before any scoring.
+        for setting in load_profile(target.kind).session_settings:
+            assert -1 < result.output.find(setting) < result.output.find("CREATE TABLE")
         assert target.catalog() == before
         if attempt == "fresh":
             assert deploy(target, path, "table", "iris_table").exit_code == 0

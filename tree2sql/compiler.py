@@ -130,7 +130,7 @@ def compile_forest(forest: Forest, request: ScoringRequest, dialect: str | Profi
               f"combine {request.combine.value}\n"
               f"-- {CAUTION}\n")
     sql = builder.render(header, scores, label, progress, reasons)
-    setup = (*profile.raw.get("session_settings", ()),  # see dialects/README.md
+    setup = (*profile.session_settings,
              *strategy.setup_statements(builder._context()))
     return CompiledQuery(sql, profile.name, strategy.name, reason, outputs,
                          scores, label, features, setup, tuple(reasons))

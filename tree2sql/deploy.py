@@ -112,7 +112,9 @@ def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
         statements.append(create_statement(profile))
     else:
         statements += upgrade_statements(engine, profile)  # manifests made before a column
-    statements[:0] = _lock_statements(engine, profile, request.name)
+    # Session settings first: the deploy scores rows (table, incremental, live check) too.
+    statements[:0] = [*profile.session_settings,
+                      *_lock_statements(engine, profile, request.name)]
     if engine is not None:
         check_source(engine, scoring.table, features, scoring.keys,
                      text_columns(forest, scoring.columns))
@@ -350,7 +352,8 @@ def restore(engine: Engine, name: str, version: int | None = None) -> tuple[Depl
                 raise UserError(f"version {target.version} was written for "
                                 f"{target.dialect}", "restore it into a database of that "
                                 "dialect")
-            for statement in [*drop_statements(profile, current, target), *target.statements,
+            for statement in [*profile.session_settings,
+                              *drop_statements(profile, current, target), *target.statements,
                               *activate_statements(profile, name, target.version,
                                                    f"restored {now()} in place of version "
                                                    f"{current.version}")]:

@@ -86,6 +86,12 @@ class Profile:
         `_partial_sum_stages`)."""
         return int(self.raw.get("trees_per_stage", TREES_PER_STAGE))
 
+    @property
+    def session_settings(self) -> tuple[str, ...]:
+        """Statements to run in the session before scoring (profile key `session_settings`,
+        e.g. PostgreSQL's `SET jit = off`): compile prints them, verify and deploy run them."""
+        return tuple(self.raw.get("session_settings", ()))
+
     def cast_double(self, sql: str) -> str:
         return f"CAST({sql} AS {self.double_type})"
 
