@@ -127,6 +127,33 @@ def test_spark_runs_the_big_forest(big_forest):
     assert seconds < SPARK_SECONDS
 
 
+def test_spark_leaves_methods_too_big_for_the_jit_to_operator_codegen(big_forest):
+    """Whole-stage code generation writes a scoring statement's stages into one Java method;
+    HotSpot does not compile a method of more than 8000 bytes of bytecode (its
+    DontCompileHugeMethods rule), so below Spark's 64 KB limit such a method ran interpreted,
+    4-6x slower (benchmarks/README.md). Spark's own EXPLAIN CODEGEN reports the method size;
+    the profile's session setting lowers the limit to HotSpot's."""
+    need(_importable("pyspark"), "pyspark is not installed")
+    model, _, X = big_forest
+    model = copy.copy(model)
+    model.estimators_ = model.estimators_[:3]
+    model.n_estimators = 3
+    forest = ingest(model)
+    engine = connect("spark://local[2]")
+    load_rows(engine, load_profile("spark"), "t2s_codegen_rows", X[:200], forest.feature_names)
+    request = ScoringRequest(table="t2s_codegen_rows", keys=(KEY,))
+    compiled = compile_forest(forest, request, "spark")
+    assert compiled.setup == ("SET spark.sql.codegen.hugeMethodLimit=8000",)
+    report = engine.query("EXPLAIN CODEGEN " + compiled.sql)
+    sizes = [int(s) for s in re.findall(r"maxMethodCodeSize:(\d+)", str(report))]
+    assert sizes and 8000 < max(sizes) < 65536, sizes  # the case the setting is for
+    for statement in compiled.setup:
+        engine.execute(statement)
+    assert engine.spark.conf.get("spark.sql.codegen.hugeMethodLimit") == "8000"
+    result = verify(model, forest, engine, request, compiled=compiled)
+    assert result.disagreements == 0 and result.max_abs_diff <= 1e-12, result.to_text()
+
+
 def _importable(module: str) -> bool:
     import importlib.util
 

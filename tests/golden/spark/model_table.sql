@@ -1,3 +1,5 @@
+SET spark.sql.codegen.hugeMethodLimit=8000;
+
 DROP TABLE IF EXISTS `__t2s_model_33dc85aced683fe4`;
 
 CREATE TABLE `__t2s_model_33dc85aced683fe4` (`tree` INT, `node` INT, `feature` INT, `bound` DOUBLE, `next_left` INT, `next_right` INT, `next_missing` INT, `value_0` DOUBLE, `value_1` DOUBLE, `value_2` DOUBLE) USING parquet;
