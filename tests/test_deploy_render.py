@@ -42,3 +42,29 @@ def test_dialect_without_dry_run_is_refused(tmp_path):
         "--name", "v", "--dialect", "snowflake"])
     assert result.exit_code == 2
     assert "--dry-run" in result.output
+
+
+def test_spark_declares_arrays_for_a_table_but_not_for_a_view(tmp_path):
+    """A deployed table reads the session variables declared just before it; a view, which
+    Spark would refuse over session variables, gets the arrays inline (text_arrays)."""
+    wine = load_wine(as_frame=True)
+    model = RandomForestClassifier(n_estimators=3, max_depth=3, random_state=0)
+    model.fit(wine.data, wine.target)
+    path = tmp_path / "wine.skops"
+    skops.io.dump(model, path)
+    rendered = {}
+    for form in ("table", "view"):
+        result = CliRunner().invoke(cli, [
+            "deploy", str(path), "--source", "cellar.wines", "--key", "lot", "--as", form,
+            "--name", "cellar.wine_scores", "--dry-run", "--dialect", "spark"])
+        assert result.exit_code == 0, result.output
+        rendered[form] = result.stdout.split(";\n\n")
+    table = rendered["table"]
+    declares = [i for i, s in enumerate(table)  # not the manifest row that records them
+                if "DECLARE OR REPLACE VARIABLE" in s and "tree2sql_deployments" not in s]
+    create = next(i for i, s in enumerate(table) if "CREATE TABLE `cellar`.`wine_scores`" in s)
+    assert len(declares) == 3 * 3 and max(declares) < create
+    assert table[declares[0]].startswith("-- tree2sql")  # the first created statement
+    assert not any("DECLARE" in s for s in rendered["view"])
+    view = next(s for s in rendered["view"] if "CREATE OR REPLACE VIEW" in s)
+    assert "strategy text_arrays" in view

@@ -179,3 +179,25 @@ def test_clickhouse_passes_over_array_shapes_when_planning_would_parse_too_much(
     capped = replace(profile, limits={**profile.limits, "constant_elements": parsed - 1})
     strategy, reason = choose(forest, capped)
     assert strategy.name == "nested_case" and "constant_elements" in reason
+
+
+def test_views_and_functions_pass_over_session_variables():
+    """Spark's declared_arrays keeps its node arrays in session variables, which a persisted
+    view or SQL function cannot read (Spark SQL reference, "DECLARE VARIABLE"): compiled for
+    one, the planner takes the next shape, and refuses the forced shape with a fix."""
+    _, forest, _ = forest_of_depth(4)
+    request = ScoringRequest(table="t", keys=(KEY,))
+    scoring = compile_forest(forest, request, "spark")
+    declares = [s for s in scoring.setup if s.startswith("DECLARE OR REPLACE VARIABLE")]
+    assert scoring.strategy == "declared_arrays" and len(declares) == 3 * len(forest.trees)
+    view = compile_forest(forest, request, "spark", persistent=True)
+    assert view.strategy == "text_arrays" and "not declared_arrays" in view.reason
+    assert not any(s.startswith("DECLARE") for s in view.setup)
+    with pytest.raises(UserError, match="session variables"):
+        compile_forest(forest, replace(request, strategy="declared_arrays"), "spark",
+                       persistent=True)
+    # Named by the model's fingerprint: two models in one session keep their own arrays.
+    other = compile_forest(forest_of_depth(5)[1], request, "spark")
+    names = [{s.split()[4] for s in c.setup if s.startswith("DECLARE")}
+             for c in (scoring, other)]
+    assert names[0] and names[1] and not names[0] & names[1]

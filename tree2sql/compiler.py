@@ -112,8 +112,10 @@ def score_column_names(forest: Forest, prefix: str) -> tuple[list[str], str | No
 
 
 def compile_forest(forest: Forest, request: ScoringRequest, dialect: str | Profile = "duckdb",
-                   progress: Callable[[int], None] | None = None) -> CompiledQuery:
-    """`dialect` is a profile name, or a Profile (e.g. one with tighter limits, for tests)."""
+                   progress: Callable[[int], None] | None = None,
+                   persistent: bool = False) -> CompiledQuery:
+    """`dialect` is a profile name, or a Profile (e.g. one with tighter limits, for tests).
+    `persistent`: the statement will live in a view or function (see `choose`)."""
     profile = dialect if isinstance(dialect, Profile) else load_profile(dialect)
     features = feature_columns(forest, request.columns)
     scores, label = score_column_names(forest, request.prefix)
@@ -122,7 +124,7 @@ def compile_forest(forest: Forest, request: ScoringRequest, dialect: str | Profi
         check_reasons(forest, request.reasons, request.combine is Combine.MAJORITY)
     outputs = [*request.keys, *scores, *([label] if label else []), *reasons]
     _check_names(request, outputs)
-    strategy, reason = choose(forest, profile, request.strategy)
+    strategy, reason = choose(forest, profile, request.strategy, persistent)
     builder = _QueryBuilder(forest, profile, request, features, strategy)
     header = (f"-- tree2sql {__version__}: {forest.source}\n"
               f"-- model fingerprint sha256:{forest.fingerprint()}\n"

@@ -131,7 +131,8 @@ def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
         reference=request.reference)
     if (previous is not None and request.form is Form.INCREMENTAL
             and previous.form == Form.INCREMENTAL.value and previous.statements == creates):
-        return Plan([*statements, creates[-1],
+        setup = creates[:len(strategy_setup(profile, compiled))]  # e.g. session variables
+        return Plan([*statements, *setup, creates[-1],
                      note_statement(profile, previous.name, previous.version,
                                     f"incremental run {deployment.created_at}")],
                     previous, compiled, previous, rerun=True)
@@ -156,19 +157,38 @@ def _header(forest: Forest, request: DeployRequest) -> str:
 
 def _create_statements(profile: Profile, forest: Forest,
                        request: DeployRequest) -> tuple[list[str], CompiledQuery]:
-    """The statements that create the object from nothing (stored for restore)."""
-    name, q = profile.qualified(request.name), profile.quote
+    """The statements that create the object from nothing (stored for restore), the first
+    one headed by the model's fingerprint. A shape's own setup (a model table, session
+    variables) runs first; a view or function never gets a session-scoped shape."""
+    name = profile.qualified(request.name)
     header = _header(forest, request)
     if request.form is Form.FUNCTION:
         statement, compiled = function_statement(profile, forest, request.scoring,
                                                  request.name)
         return [header + statement], compiled
-    compiled = compile_forest(forest, request.scoring, profile.name)
+    compiled = compile_forest(forest, request.scoring, profile.name,
+                              persistent=request.form is Form.VIEW)
+    setup = strategy_setup(profile, compiled)
     if request.form is Form.VIEW:
-        return [header + _ddl(profile, "view").format(name=name, query=compiled.sql)], compiled
-    if request.form is Form.TABLE:
-        return [header + _ddl(profile, "table").format(name=name, query=compiled.sql)], \
-            compiled
+        body = [_ddl(profile, "view").format(name=name, query=compiled.sql)]
+    elif request.form is Form.TABLE:
+        body = [_ddl(profile, "table").format(name=name, query=compiled.sql)]
+    else:
+        body = _incremental_statements(profile, request, compiled, header)
+    first, *rest = [*setup, *body]
+    return [header + first, *rest], compiled
+
+
+def strategy_setup(profile: Profile, compiled: CompiledQuery) -> list[str]:
+    """The compiled query's setup without the session settings (which a deploy runs first)."""
+    return [s for s in compiled.setup if s not in profile.session_settings]
+
+
+def _incremental_statements(profile: Profile, request: DeployRequest,
+                            compiled: CompiledQuery, header: str) -> list[str]:
+    """An empty table of the outputs, a unique index on the keys, and the insert of the
+    rows whose keys it does not hold yet (headed too: each incremental run repeats it)."""
+    name, q = profile.qualified(request.name), profile.quote
     keys = ", ".join(q(k) for k in request.scoring.keys)
     new, old = q("__t2s_new"), q("__t2s_old")
     empty = f"SELECT * FROM (\n{compiled.sql}\n) {new} WHERE 1 = 0"
@@ -180,8 +200,8 @@ def _create_statements(profile: Profile, forest: Forest,
               f"{compiled.sql}\n) {new}\n"
               f"WHERE NOT EXISTS (SELECT 1 FROM {name} {old} WHERE {match})"
               + (f"\n{conflict}" if conflict else ""))
-    return [header + _ddl(profile, "table").format(name=name, query=empty),
-            f"CREATE UNIQUE INDEX {index} ON {name} ({keys})", insert], compiled
+    return [_ddl(profile, "table").format(name=name, query=empty),
+            f"CREATE UNIQUE INDEX {index} ON {name} ({keys})", insert]
 
 
 def _ddl(profile: Profile, form: str) -> str:

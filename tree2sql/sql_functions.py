@@ -57,7 +57,7 @@ def function_statement(profile: Profile, forest: Forest, request: ScoringRequest
         raise UserError("the function form takes numbers, but this pipeline reads text "
                         "columns", "deploy the pipeline as a view or table instead")
     compiled = compile_forest(forest, replace(request, table=ARGS_RELATION, keys=()),
-                              profile.name)
+                              profile.name, persistent=True)
     q = profile.quote
     args = [argument(i) for i in range(len(compiled.feature_columns))]
     row = ", ".join(f"{a} AS {q(c)}" for a, c in zip(args, compiled.feature_columns,

@@ -15,6 +15,7 @@ from tree2sql.errors import UserError
 from tree2sql.forest import Forest
 from tree2sql.strategies.base import Context, Needs, Strategy
 from tree2sql.strategies.case_leaves import CaseLeaves
+from tree2sql.strategies.declared_arrays import DeclaredArrays
 from tree2sql.strategies.depth_staged import DepthStaged
 from tree2sql.strategies.leaf_counts import LeafCounts
 from tree2sql.strategies.level_arrays import LevelArrays
@@ -25,7 +26,7 @@ from tree2sql.strategies.text_arrays import TextArrays
 
 STRATEGIES: dict[str, type[Strategy]] = {
     cls.name: cls for cls in (NestedCase, NodeArrays, DepthStaged, ModelTable, TextArrays,
-                              CaseLeaves, LevelArrays, LeafCounts)}
+                              CaseLeaves, LevelArrays, LeafCounts, DeclaredArrays)}
 AST_ELEMENTS_PER_BYTE = 1 / 6  # rough parse-tree nodes per statement byte (estimate)
 
 __all__ = ["STRATEGIES", "Context", "Needs", "Strategy", "choose", "limit_problem"]
@@ -63,12 +64,18 @@ def limit_problem(needs: Needs, forest: Forest, profile: Profile) -> str | None:
     return None
 
 
-def choose(forest: Forest, profile: Profile, forced: str | None = None) -> tuple[Strategy, str]:
-    """The strategy to use and a sentence saying why."""
+def choose(forest: Forest, profile: Profile, forced: str | None = None,
+           persistent: bool = False) -> tuple[Strategy, str]:
+    """The strategy to use and a sentence saying why. `persistent`: the SQL goes into a
+    view or function, which cannot read a session-scoped shape's setup."""
     if forced:
         if forced not in STRATEGIES:
             raise UserError(f"unknown strategy {forced!r}",
                             "use one of: " + ", ".join(sorted(STRATEGIES)))
+        if persistent and STRATEGIES[forced].session_scoped:
+            raise UserError(f"{forced} keeps its arrays in session variables, which a view "
+                            "or function cannot read", "deploy it --as table or incremental, "
+                            "or choose another --strategy")
         strategy = STRATEGIES[forced]()
         problem = limit_problem(strategy.needs(forest, profile), forest, profile)
         warning = f"; beware: {problem}" if problem else ""
@@ -79,6 +86,10 @@ def choose(forest: Forest, profile: Profile, forced: str | None = None) -> tuple
         if cls is None:
             raise UserError(f"the {profile.name} profile lists an unknown strategy {name!r}",
                             "use one of: " + ", ".join(sorted(STRATEGIES)))
+        if persistent and cls.session_scoped:
+            passed_over.append(f"not {name}: a view or function cannot read its session "
+                               "variables")
+            continue
         strategy = cls()
         problem = limit_problem(strategy.needs(forest, profile), forest, profile)
         if problem is None:

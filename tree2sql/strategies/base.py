@@ -197,6 +197,9 @@ class Strategy(ABC):
 
     name: str = ""
     summary: str = ""
+    # Its setup lives in the session only (e.g. session variables): no persisted view or
+    # function can read it, so the planner passes it over for those.
+    session_scoped: bool = False
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         """Extra CTEs (name, SELECT body) after the input; the last one becomes the source."""

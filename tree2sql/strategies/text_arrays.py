@@ -88,12 +88,6 @@ def _right_follows_left(tree: Tree, depth: np.ndarray) -> bool:
     return bool(np.array_equal(tree.right[internal], internal + 1 + size[internal + 1]))
 
 
-def _carried(profile: Profile) -> bool:
-    """The node arrays come in by a cross join and ride along as columns, unless the
-    profile names them as constants or writes them where each step reads them."""
-    return "constant_alias" not in profile.raw and not profile.raw.get("arrays_at_each_use")
-
-
 class TextArrays(Strategy):
     name = "text_arrays"
     summary = ("per-tree node arrays parsed from text, one CTE stage per level "
@@ -118,6 +112,11 @@ class TextArrays(Strategy):
 
     def depth(self, forest: Forest) -> int:
         return max(self._depths(forest))
+
+    def _carried(self, profile: Profile) -> bool:
+        """The node arrays come in by a cross join and ride along as columns, unless the
+        profile names them as constants or writes them where each step reads them."""
+        return "constant_alias" not in profile.raw and not profile.raw.get("arrays_at_each_use")
 
     def _walked_levels(self, forest: Forest) -> int:
         return max(0, self.depth(forest) - self.top_levels)
@@ -153,7 +152,7 @@ class TextArrays(Strategy):
                      "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *start])
                      + f"\nFROM {ctx.source}")]
         row = [*ctx.keys, ctx.ok, f"{self._row_array(ctx)} AS {xs}"]
-        if not _carried(p):
+        if not self._carried(p):
             stages = [(ctx.prefix("walk0"),
                        "SELECT " + ",\n  ".join([*row, *start]) + f"\nFROM {ctx.source}")]
             keep = [*ctx.keys, ctx.ok, xs]
@@ -188,9 +187,13 @@ class TextArrays(Strategy):
     def _model_arrays(self, ctx: Context) -> list[tuple[str, str]]:
         """(name, array from text) for every tree's slot, bound and right-child arrays."""
         element = self._elements(ctx.profile)
-        return [(self._name(ctx, what, t), self._array(ctx, values, element[what]))
+        return [(self._array_name(ctx, what, t), self._array(ctx, values, element[what]))
                 for t in range(len(ctx.forest.trees))
                 for what, values in self._node_columns(ctx, t).items()]
+
+    def _array_name(self, ctx: Context, what: str, t: int) -> str:
+        """Name of tree t's `what` array (a carried column or a named constant)."""
+        return self._name(ctx, what, t)
 
     @staticmethod
     def _elements(profile: Profile) -> dict[str, str]:
@@ -225,10 +228,10 @@ class TextArrays(Strategy):
         named constant), or with `arrays_at_each_use` the array itself, which the engine
         folds to a constant once per use (Spark: nothing carried, no constant names)."""
         if not ctx.profile.raw.get("arrays_at_each_use"):
-            return self._name(ctx, what, t)
+            return self._array_name(ctx, what, t)
         if not self._written:
             self._written = dict(self._model_arrays(ctx))
-        return self._written[self._name(ctx, what, t)]
+        return self._written[self._array_name(ctx, what, t)]
 
     def _step(self, ctx: Context, t: int) -> str:
         n = self._name(ctx, "n", t)
