@@ -154,6 +154,18 @@ def test_spark_leaves_methods_too_big_for_the_jit_to_operator_codegen(big_forest
     assert result.disagreements == 0 and result.max_abs_diff <= 1e-12, result.to_text()
 
 
+def test_spark_before_4_is_told_to_write_arrays_inline():
+    """declared_arrays' DECLARE VARIABLE came with Spark 4.0 (SPARK-42849, fix version
+    4.0.0); on an older session the engine refuses it with the fix instead of Spark's parse
+    error. The session here runs Spark 4, where the declarations run (see above)."""
+    from tree2sql.engines_spark import has_session_variables
+
+    assert not has_session_variables("3.5.3") and not has_session_variables("3.4.1")
+    assert has_session_variables("4.0.0") and has_session_variables("4.1.1")
+    need(_importable("pyspark"), "pyspark is not installed")
+    assert has_session_variables(connect("spark://local[2]").spark.version)
+
+
 def _importable(module: str) -> bool:
     import importlib.util
 

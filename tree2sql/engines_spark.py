@@ -35,6 +35,11 @@ def local_session(master: str = "local[2]") -> Any:
     return builder.getOrCreate()
 
 
+def has_session_variables(version: str) -> bool:
+    """Spark 4.0 brought DECLARE VARIABLE (SPARK-42849), which declared_arrays uses."""
+    return int(version.split(".")[0]) >= 4
+
+
 class SparkEngine(Engine):
     dialect = "spark"
 
@@ -42,6 +47,10 @@ class SparkEngine(Engine):
         self.spark = session if session is not None else local_session(master)
 
     def execute(self, sql: str) -> None:
+        if sql.startswith("DECLARE") and not has_session_variables(self.spark.version):
+            raise UserError(f"this session runs Spark {self.spark.version}, which has no "
+                            "session variables (DECLARE VARIABLE needs Spark 4.0)",
+                            "compile with --strategy text_arrays")
         self.spark.sql(sql)
 
     def query(self, sql: str) -> dict[str, np.ndarray]:
