@@ -26,10 +26,6 @@ class DeclaredArrays(TextArrays):
                "(Spark 4; not for views)")
     session_scoped = True
 
-    def __init__(self) -> None:
-        super().__init__()
-        self._fingerprint = ""
-
     def _check(self, profile: Profile) -> None:
         require_keys(profile, (*REQUIRED_KEYS, "array_variable"), self.name)
 
@@ -37,9 +33,7 @@ class DeclaredArrays(TextArrays):
         return False
 
     def _array_name(self, ctx: Context, what: str, t: int) -> str:
-        if not self._fingerprint:
-            self._fingerprint = ctx.forest.fingerprint()[:16]
-        return self._name(ctx, f"{self._fingerprint}_{what}", t)
+        return self._name(ctx, f"{ctx.forest.fingerprint()[:16]}_{what}", t)  # cached hash
 
     def _array_at(self, ctx: Context, what: str, t: int) -> str:
         return self._array_name(ctx, what, t)
