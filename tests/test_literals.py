@@ -14,7 +14,10 @@ import struct
 import duckdb
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
+from tree2sql import shortest
 from tree2sql.dialects import load_profile
 from tree2sql.exact import EXACT_ARITHMETIC, SHORTEST, bounds, float_text
 from tree2sql.forest import Comparison
@@ -104,3 +107,48 @@ def test_non_finite_values_have_no_literal():
         for x in (np.inf, -np.inf, np.nan):
             with pytest.raises(ValueError):
                 float_text(x, style)
+
+
+# -- the bulk writer behind every shortest literal (tree2sql.shortest) ---------------------
+# Reference: Python's own float repr, the shortest digits that read back as the same
+# binary64 value (David Gay's correctly rounded dtoa; IEEE 754-2019 clause 5.12.2 asks
+# for conversions that recover the original value).
+
+
+def test_bulk_shortest_text_is_python_repr():
+    special = [np.inf, -np.inf, np.nan, 1e-5, -1.5e-5, 9.999e-5, 1e-4, 10.00001, 1e16, 1e22]
+    values = np.array(VALUES + special)
+    assert shortest._fast_path_matches_repr()  # the installed orjson is used, not skipped
+    assert shortest.shortest_texts(values) == list(map(repr, values.tolist()))
+
+
+@given(st.lists(st.floats(allow_nan=False, allow_infinity=False), min_size=17, max_size=200))
+@settings(max_examples=300, deadline=None)
+def test_bulk_shortest_text_matches_repr_for_any_doubles(xs):
+    assert shortest.shortest_texts(np.array(xs)) == list(map(repr, xs))
+
+
+class _ScientificWriter:
+    """A writer whose layout differs from repr's (always 17 significant digits): what a
+    future orjson that laid numbers out differently would look like to the probe."""
+
+    OPT_SERIALIZE_NUMPY = 0
+
+    @staticmethod
+    def dumps(values, option=0) -> bytes:
+        return ("[" + ",".join(f"{v:.17g}" for v in values.tolist()) + "]").encode()
+
+
+@pytest.mark.parametrize("writer", [None, _ScientificWriter()])
+def test_bulk_shortest_text_falls_back_to_repr(monkeypatch, writer):
+    """Without orjson, or with one whose layout the probe does not recognise, every value
+    goes through repr: the statement's bytes never depend on the orjson version."""
+    monkeypatch.setattr(shortest, "orjson", writer)
+    shortest._fast_path_matches_repr.cache_clear()
+    try:
+        assert not shortest._fast_path_matches_repr()
+        values = np.array(VALUES[:500])
+        assert shortest.shortest_texts(values) == list(map(repr, values.tolist()))
+    finally:
+        monkeypatch.undo()
+        shortest._fast_path_matches_repr.cache_clear()

@@ -15,6 +15,7 @@ from typing import Any
 
 import numpy as np
 from sqlglot import exp
+from sqlglot.dialects.dialect import Dialect
 
 from tree2sql.errors import UserError
 from tree2sql.exact import SHORTEST, float_texts
@@ -191,6 +192,9 @@ def load_profile(name: str) -> Profile:
                         "use one of sqlglot's dialect names: " + ", ".join(available()))
     with path.open("rb") as handle:
         raw = tomllib.load(handle)
+    # sqlglot imports a dialect's module on first use (tens of milliseconds): do it here,
+    # with the rest of loading the dialect, not in the middle of the first compile.
+    Dialect.get_or_raise(raw.get("sqlglot_dialect", name))
     try:
         return Profile(
             name=name,

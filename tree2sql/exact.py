@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from tree2sql.forest import Comparison
+from tree2sql.shortest import shortest_texts
 
 FLOAT32_MAX = float(np.finfo(np.float32).max)
 # Doubles at or beyond this magnitude round to infinity when cast to float32 (the midpoint
@@ -90,8 +91,9 @@ def float_texts(values: np.ndarray, style: str = SHORTEST, arithmetic: str = "{t
     distinct = distinct.view(np.float64)
     before, after = template.split("{text}")
     if style == SHORTEST:
-        texts = [f"{before}{text}{after}" if "e" in text else f"{before}{text}e0{after}"
-                 for text in map(repr, distinct.tolist())]
+        shortest = shortest_texts(distinct)
+        texts = ([f"{before}{t if 'e' in t else t + 'e0'}{after}" for t in shortest]
+                 if before or after else [t if "e" in t else t + "e0" for t in shortest])
     else:
         opening, closing = arithmetic.split("{text}")
         texts = [f"{before}{text}{after}" if form is None
@@ -168,14 +170,15 @@ _integer_table = np.array(["0"], dtype=object)
 def integer_texts(values: np.ndarray) -> np.ndarray:
     """str() of each integer, as an object array: small non-negative ones (node ids,
     slots) from a table of their texts, grown on demand but never far past the numbers
-    asked for at once."""
+    asked for at once; others once per distinct value."""
     global _integer_table
     values = np.asarray(values).astype(np.int64)
     if not values.size:
         return np.empty(0, dtype=object)
     low, high = int(values.min()), int(values.max())
     if low < 0 or high >= max(len(_integer_table), 4 * len(values) + 4096):
-        return np.array(list(map(str, values.tolist())), dtype=object)
+        distinct, where = np.unique(values, return_inverse=True)  # codes repeat: 0 above all
+        return np.array(list(map(str, distinct.tolist())), dtype=object)[where]
     if high >= len(_integer_table):
         size = max(high + 1, 2 * len(_integer_table))
         _integer_table = np.array(list(map(str, range(size))), dtype=object)

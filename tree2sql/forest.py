@@ -114,7 +114,16 @@ class Tree:
         return int(self.node_depths().max())
 
     def node_depths(self) -> np.ndarray:
-        """Depth of every node (root 0): one numpy step per level, no per-node Python."""
+        """Depth of every node (root 0), read-only: worked out once per tree, since the
+        planner and the shapes ask for it again and again."""
+        if "_depths" not in self.__dict__:  # frozen: set past the dataclass's guard
+            depths = self._walk_depths()
+            depths.flags.writeable = False
+            object.__setattr__(self, "_depths", depths)
+        return self.__dict__["_depths"]
+
+    def _walk_depths(self) -> np.ndarray:
+        """One numpy step per level, no per-node Python."""
         depth = np.zeros(self.n_nodes, dtype=np.int64)
         frontier = np.zeros(1, dtype=np.int64)
         level = 0

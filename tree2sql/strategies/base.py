@@ -17,6 +17,7 @@ from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
 from tree2sql.exact import bounds, integer_texts
 from tree2sql.forest import Forest
+from tree2sql.shortest import shortest_texts
 
 LeafValue = Callable[[int], str]  # node id of a leaf -> SQL literal for that leaf
 
@@ -164,9 +165,18 @@ def number_texts(values: np.ndarray) -> list[str]:
     items = np.full(len(values), "0", dtype=object)
     written = (values != 0) | np.signbit(values)
     distinct, where = np.unique(values[written].view(np.int64), return_inverse=True)
-    items[written] = np.array(list(map(float.__repr__, distinct.view(np.float64).tolist())),
-                              dtype=object)[where]
+    items[written] = np.array(shortest_texts(distinct.view(np.float64)), dtype=object)[where]
     return items.tolist()
+
+
+def number_texts_each(arrays: list[np.ndarray]) -> list[list[str]]:
+    """`number_texts` of several arrays of one kind in a single pass: each pass has a fixed
+    cost, and a forest has hundreds of node arrays."""
+    if not arrays:
+        return []
+    texts = number_texts(np.concatenate(arrays))
+    ends = np.cumsum([len(a) for a in arrays]).tolist()
+    return [texts[begin:end] for begin, end in zip([0, *ends[:-1]], ends, strict=True)]
 
 
 def array_from_numbers(profile: Profile, values: np.ndarray, element: str) -> str:

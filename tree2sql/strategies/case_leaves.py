@@ -58,12 +58,11 @@ class CaseLeaves(Strategy):
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         require_keys(ctx.profile, REQUIRED_KEYS, self.name)
-        cases, offsets = every_tree(ctx)
-        walks = []
-        for t in range(len(ctx.forest.trees)):
-            numbers = integer_texts(self._leaf_numbers(ctx, t))
-            case = cases.render_root(t, numbers.__getitem__, int(offsets[t]))
-            walks.append(f"{case} AS {self._leaf(ctx, t)}")
+        cases, _ = every_tree(ctx)
+        trees = range(len(ctx.forest.trees))
+        numbers = integer_texts(np.concatenate([self._leaf_numbers(ctx, t) for t in trees]))
+        walks = [f"{case} AS {self._leaf(ctx, t)}"
+                 for t, case in zip(trees, cases.render_roots(trees, numbers), strict=True)]
         fence = ctx.profile.raw.get("leaf_stage_fence", "")
         body = ("SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *walks])
                 + f"\nFROM {ctx.source}" + (f"\n{fence}" if fence else ""))

@@ -74,6 +74,7 @@ class LeafCounts(NestedCase):
     def __init__(self) -> None:
         super().__init__()
         self._counts: tuple[list[np.ndarray], int] | str | None = None
+        self._code_texts: np.ndarray | None = None  # packed codes' texts by stacked node id
 
     def _packed(self, forest: Forest) -> tuple[list[np.ndarray], int] | str:
         if self._counts is None:
@@ -89,9 +90,10 @@ class LeafCounts(NestedCase):
             return None
         if self._cases is None:
             self._cases = every_tree(ctx)
-        walks, offsets = self._cases
-        return [f"{walks.render_root(t, integer_texts(packed[0][t]).__getitem__, int(offsets[t]))}"
-                f" AS {self._code(ctx, t)}" for t in trees]
+        if self._code_texts is None:  # every tree's codes by node, written at once
+            self._code_texts = integer_texts(np.concatenate(packed[0]))
+        walks = self._cases[0].render_roots(trees, self._code_texts)
+        return [f"{walk} AS {self._code(ctx, t)}" for t, walk in zip(trees, walks, strict=True)]
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         packed = self._packed(ctx.forest)

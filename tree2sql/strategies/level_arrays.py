@@ -29,8 +29,8 @@ import numpy as np
 
 from tree2sql.dialects import Profile
 from tree2sql.forest import LEAF, Forest, Tree
-from tree2sql.strategies.base import Context, array_from_texts, number_texts, require_keys
-from tree2sql.strategies.text_arrays import REQUIRED_KEYS, TOP_LEVELS, TextArrays
+from tree2sql.strategies.base import Context, array_from_texts, require_keys
+from tree2sql.strategies.text_arrays import REQUIRED_KEYS, TextArrays
 
 
 def breadth_first(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
@@ -52,10 +52,6 @@ class LevelArrays(TextArrays):
     summary = ("per-level node arrays, breadth first, each named in the stage that walks "
                "its level (ClickHouse)")
 
-    def __init__(self, top_levels: int = TOP_LEVELS) -> None:
-        super().__init__(top_levels)
-        self._texts: dict[int, tuple[np.ndarray, dict[str, list[str]]]] = {}
-
     def _layout(self, forest: Forest, t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         if t not in self._layouts:
             tree = forest.trees[t]
@@ -70,13 +66,11 @@ class LevelArrays(TextArrays):
 
     def _levels(self, ctx: Context, t: int) -> tuple[np.ndarray, dict[str, list[str]]]:
         """Where each level starts among tree t's breadth-first positions, and the texts of
-        its node arrays by position (written once per tree; a level's arrays are slices)."""
-        if t not in self._texts:
-            order, _, depth = self._layout(ctx.forest, t)
-            starts = np.searchsorted(depth[order], np.arange(int(depth.max()) + 2))
-            self._texts[t] = starts, {what: number_texts(values) for what, values
-                                      in self._node_columns(ctx, t).items()}
-        return self._texts[t]
+        its node arrays by position (written once for the forest; a level's arrays are
+        slices)."""
+        order, _, depth = self._layout(ctx.forest, t)
+        starts = np.searchsorted(depth[order], np.arange(int(depth.max()) + 2))
+        return starts, self._column_texts(ctx)[t]
 
     def _walk_stage(self, ctx: Context, level: int, keep: list[str], source: str) -> str:
         p = ctx.profile

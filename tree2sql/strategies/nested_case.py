@@ -179,6 +179,22 @@ class CaseText:
         return "".join(text.tolist())
 
 
+    def render_roots(self, roots: range, texts: np.ndarray) -> list[str]:
+        """The text from each of `roots` (consecutive), holes filled with `texts[node]`
+        (an object array by node id): one fill and one list for all of them, where
+        `render_root` would copy and fill per root."""
+        if not roots:
+            return []
+        begin, end = int(self._begins[roots.start]), int(self._ends[roots.stop - 1])
+        first = int(self._hole_ends[roots.start - 1]) if roots.start else 0
+        last = int(self._hole_ends[roots.stop - 1])
+        text = self._text[begin:end].copy()
+        text[self._hole_at[first:last] - begin] = texts[self.holes[first:last]]
+        pieces = text.tolist()
+        return ["".join(pieces[int(self._begins[i]) - begin:int(self._ends[i]) - begin])
+                for i in roots]
+
+
 def nested_case(tree: Tree, splits: Splits, leaf_value: LeafValue, root: int = 0,
                 levels: int | None = None) -> str:
     """Render a tree (or its top `levels` below `root`). A leaf, or a node `levels` below

@@ -50,6 +50,8 @@ from tree2sql.strategies.base import (
     Needs,
     Strategy,
     array_from_numbers,
+    array_from_texts,
+    number_texts_each,
     require_keys,
 )
 from tree2sql.strategies.nested_case import nested_case, split_conditions
@@ -98,6 +100,7 @@ class TextArrays(Strategy):
         self._layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         self._quoted: dict[tuple[str, str], str] = {}
         self._written: dict[str, str] = {}  # array name -> its SQL (arrays_at_each_use)
+        self._texts: list[dict[str, list[str]]] | None = None  # see _column_texts
 
     def _layout(self, forest: Forest, t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(order, position, depth by node id) of tree t, computed once."""
@@ -187,9 +190,20 @@ class TextArrays(Strategy):
     def _model_arrays(self, ctx: Context) -> list[tuple[str, str]]:
         """(name, array from text) for every tree's slot, bound and right-child arrays."""
         element = self._elements(ctx.profile)
-        return [(self._array_name(ctx, what, t), self._array(ctx, values, element[what]))
-                for t in range(len(ctx.forest.trees))
-                for what, values in self._node_columns(ctx, t).items()]
+        return [(self._array_name(ctx, what, t), array_from_texts(ctx.profile, items,
+                                                                  element[what]))
+                for t, texts in enumerate(self._column_texts(ctx))
+                for what, items in texts.items()]
+
+    def _column_texts(self, ctx: Context) -> list[dict[str, list[str]]]:
+        """Per tree, the number texts of its node arrays (`_node_columns`), written for
+        the whole forest in one pass per kind of array and kept."""
+        if self._texts is None:
+            columns = [self._node_columns(ctx, t) for t in range(len(ctx.forest.trees))]
+            kinds = {what: number_texts_each([c[what] for c in columns]) for what in columns[0]}
+            self._texts = [{what: kinds[what][t] for what in kinds}
+                           for t in range(len(columns))]
+        return self._texts
 
     def _array_name(self, ctx: Context, what: str, t: int) -> str:
         """Name of tree t's `what` array (a carried column or a named constant)."""
