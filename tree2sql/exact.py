@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from tree2sql.forest import Comparison
-from tree2sql.shortest import shortest_texts
+from tree2sql.shortest import integer_texts_bulk, shortest_texts
 
 FLOAT32_MAX = float(np.finfo(np.float32).max)
 # Doubles at or beyond this magnitude round to infinity when cast to float32 (the midpoint
@@ -95,15 +95,15 @@ def float_texts(values: np.ndarray, style: str = SHORTEST, arithmetic: str = "{t
         texts = ([f"{before}{t if 'e' in t else t + 'e0'}{after}" for t in shortest]
                  if before or after else [t if "e" in t else t + "e0" for t in shortest])
     else:
-        opening, closing = arithmetic.split("{text}")
-        texts = [f"{before}{text}{after}" if form is None
-                 else f"{before}{opening}{form}{closing}{after}"
-                 for text, form in zip(*_exact_arithmetic(distinct), strict=True)]
+        texts = _exact_arithmetic(distinct, arithmetic)
+        if before or after:
+            texts = [f"{before}{text}{after}" for text in texts]
     return np.array(texts, dtype=object)[where].tolist()
 
 
-def _exact_arithmetic(x: np.ndarray) -> tuple[list[str | None], list[str | None]]:
-    """x as read exactly by every engine: (integer text or None, arithmetic form or None).
+def _exact_arithmetic(x: np.ndarray, arithmetic: str) -> list[str]:
+    """x as read exactly by every engine: an integer's text, or an arithmetic form put
+    in `arithmetic` (over {text}).
 
     Integers below 2**53 and powers of ten up to 1e22 convert exactly, and one IEEE
     multiply or divide is correctly rounded, so `(S / 1eK)` is exactly x when S / 10**K
@@ -115,35 +115,49 @@ def _exact_arithmetic(x: np.ndarray) -> tuple[list[str | None], list[str | None]
     small = integral & (np.abs(x) < EXACT_INTEGER)
     texts = np.full(len(x), None, dtype=object)
     texts[small] = [repr(v) + "e0" for v in x[small].tolist()]  # sign of zero kept
-    forms = np.full(len(x), None, dtype=object)
-    _decimal_forms(x, forms, np.flatnonzero(~integral), divide=True)
-    _decimal_forms(x, forms, np.flatnonzero(integral & ~small), divide=False)
-    _binary_forms(x, forms, np.flatnonzero(~small & (forms == None)))  # noqa: E711
-    return texts.tolist(), forms.tolist()
+    wrap = tuple(arithmetic.split("{text}"))
+    _decimal_forms(x, texts, np.flatnonzero(~integral), True, wrap)
+    _decimal_forms(x, texts, np.flatnonzero(integral & ~small), False, wrap)
+    _binary_forms(x, texts, np.flatnonzero(texts == None), wrap)  # noqa: E711
+    return texts.tolist()
 
 
-def _decimal_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray, divide: bool) -> None:
+def _decimal_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray, divide: bool,
+                   wrap: tuple[str, ...]) -> None:
     """Write `(S / 1eK)` (fractions; smallest K) or `(S * 1eK)` (integers past 2**53;
-    largest K) into `forms[at]` where one IEEE operation on an integer S below 2**53 gives
-    exactly x. Every K is tried at once; the integer nearest x * 10**K may be one off, so
-    its neighbours are tried too."""
-    if divide:  # a form with some K implies one with the most digits S allows: try it first
-        with np.errstate(divide="ignore", over="ignore"):
-            most = np.floor(np.log10((EXACT_INTEGER - 1) / np.abs(x[at])))
-        most = np.clip(most, 1, POWER_OF_TEN_EXACT)
-        at = at[_candidates(x[at][:, None], 10.0 ** most[:, None], divide)[1].any(axis=1)]
-    if not at.size:
-        return
-    k = np.arange(1, POWER_OF_TEN_EXACT + 1) if divide else \
-        np.arange(POWER_OF_TEN_EXACT, 0, -1)
-    digits, found = _candidates(x[at][:, None], 10.0 ** k, divide)
-    has = found.any(axis=1)
-    first = found.argmax(axis=1)[has]
-    rows = np.flatnonzero(has)
-    op = " / " if divide else " * "
-    forms[at[has]] = [f"({d}{op}1e{p})" for d, p in
-                      zip(digits[rows, first].astype(np.int64).tolist(), k[first].tolist(),
-                          strict=True)]
+    largest K), between the two parts of `wrap`, into `forms[at]` where one IEEE
+    operation on an integer S below 2**53 gives
+    exactly x. The integer nearest x * 10**K may be one off, so its neighbours are tried
+    too (`_candidates`)."""
+    if divide:
+        at, k, digits = _smallest_quotients(x, at)
+    else:  # rare (integers past 2**53): every K tried at once
+        every_k = np.arange(POWER_OF_TEN_EXACT, 0, -1)
+        digits, found = _candidates(x[at][:, None], 10.0 ** every_k, divide)
+        has = found.any(axis=1)
+        first = found.argmax(axis=1)[has]
+        at, k, digits = at[has], every_k[first], digits[np.flatnonzero(has), first]
+    op, (opening, closing) = " / " if divide else " * ", wrap
+    forms[at] = [f"{opening}({d}{op}1e{p}){closing}" for d, p in
+                 zip(integer_texts_bulk(digits), k.astype(np.int64).tolist(), strict=True)]
+
+
+def _smallest_quotients(x: np.ndarray, at: np.ndarray) -> tuple[np.ndarray, np.ndarray,
+                                                                  np.ndarray]:
+    """(at, K, S) for those x[at] that are S / 10**K, with the smallest K. A form with K
+    digits persists with more (10 S / 10**(K+1) is the same quotient), so the most digits
+    S allows are tried first and K is then found by bisection."""
+    with np.errstate(divide="ignore", over="ignore"):
+        most = np.floor(np.log10((EXACT_INTEGER - 1) / np.abs(x[at])))
+    most = np.clip(most, 1, POWER_OF_TEN_EXACT)
+    has = _candidates(x[at], 10.0 ** most, True)[1]
+    at, v = at[has], x[at[has]]
+    low, high = np.ones(len(at)), most[has]
+    while (low < high).any():
+        mid = np.floor((low + high) / 2)
+        found = _candidates(v, 10.0 ** mid, True)[1]
+        high, low = np.where(found, mid, high), np.where(found, low, mid + 1)
+    return at, high, _candidates(v, 10.0 ** high, True)[0]
 
 
 def _candidates(v: np.ndarray, scale: np.ndarray, divide: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -170,24 +184,25 @@ _integer_table = np.array(["0"], dtype=object)
 def integer_texts(values: np.ndarray) -> np.ndarray:
     """str() of each integer, as an object array: small non-negative ones (node ids,
     slots) from a table of their texts, grown on demand but never far past the numbers
-    asked for at once; others once per distinct value."""
+    asked for at once; others in bulk."""
     global _integer_table
     values = np.asarray(values).astype(np.int64)
     if not values.size:
         return np.empty(0, dtype=object)
     low, high = int(values.min()), int(values.max())
     if low < 0 or high >= max(len(_integer_table), 4 * len(values) + 4096):
-        distinct, where = np.unique(values, return_inverse=True)  # codes repeat: 0 above all
-        return np.array(list(map(str, distinct.tolist())), dtype=object)[where]
+        return np.array(integer_texts_bulk(values), dtype=object)
     if high >= len(_integer_table):
         size = max(high + 1, 2 * len(_integer_table))
         _integer_table = np.array(list(map(str, range(size))), dtype=object)
     return _integer_table[values]
 
 
-def _binary_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray) -> None:
+def _binary_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray,
+                  wrap: tuple[str, ...]) -> None:
     """Write x as an odd integer times (or divided by) powers of two, each step exact:
-    `(CAST(odd AS REAL) / 2**s)`, the power split in steps of at most 2**62."""
+    `(CAST(odd AS REAL) / 2**s)`, the power split in steps of at most 2**62, between the
+    two parts of `wrap`."""
     if not at.size:
         return
     mantissa, power = np.frexp(x[at])
@@ -195,11 +210,13 @@ def _binary_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray) -> None:
     zeros = np.frexp((odd & -odd).astype(np.float64))[1] - 1  # trailing zero bits
     odd, shift = odd >> zeros, power - 53 + zeros
     one_step = (shift != 0) & (np.abs(shift) <= POWER_OF_TWO_STEP)
-    forms[at[one_step]] = [f"(CAST({o} AS REAL){' * ' if s > 0 else ' / '}{_POWERS_OF_TWO[abs(s)]})"
-                           for o, s in zip(odd[one_step].tolist(), shift[one_step].tolist(),
-                                           strict=True)]
+    opening, closing = wrap
+    forms[at[one_step]] = [f"{opening}(CAST({o} AS REAL){' * ' if s > 0 else ' / '}"
+                           f"{_POWERS_OF_TWO[abs(s)]}){closing}"
+                           for o, s in zip(integer_texts_bulk(odd[one_step]),
+                                           shift[one_step].tolist(), strict=True)]
     for i in np.flatnonzero(~one_step).tolist():
         steps, op = [f"CAST({odd[i]} AS REAL)"], " * " if shift[i] > 0 else " / "
         for done in range(0, abs(int(shift[i])), POWER_OF_TWO_STEP):
             steps.append(str(2 ** min(POWER_OF_TWO_STEP, abs(int(shift[i])) - done)))
-        forms[at[i]] = "(" + op.join(steps) + ")"
+        forms[at[i]] = f"{opening}({op.join(steps)}){closing}"

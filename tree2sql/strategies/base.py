@@ -138,8 +138,10 @@ class Context:
     @classmethod
     def build(cls, forest: Forest, profile: Profile, source: str, keys: list[str], ok: str,
               features: list[str]) -> Context:
-        return cls(forest, profile, source, keys, ok, features,
-                   [bounds(tree.threshold, forest.comparison) for tree in forest.trees])
+        every = bounds(np.concatenate([tree.threshold for tree in forest.trees]),
+                       forest.comparison)  # one pass for the forest, then a view per tree
+        ends = np.cumsum([tree.n_nodes for tree in forest.trees])
+        return cls(forest, profile, source, keys, ok, features, np.split(every, ends[:-1]))
 
     def prefix(self, name: str) -> str:
         """A quoted internal name (never clashes with user columns, see compiler)."""

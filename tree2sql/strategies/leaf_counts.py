@@ -90,8 +90,11 @@ class LeafCounts(NestedCase):
             return None
         if self._cases is None:
             self._cases = every_tree(ctx)
-        if self._code_texts is None:  # every tree's codes by node, written at once
-            self._code_texts = integer_texts(np.concatenate(packed[0]))
+        if self._code_texts is None:  # every tree's leaf codes by node, written at once
+            codes = np.concatenate(packed[0])
+            leaves = np.flatnonzero(np.concatenate([t.left == LEAF for t in ctx.forest.trees]))
+            self._code_texts = np.full(len(codes), "0", dtype=object)
+            self._code_texts[leaves] = integer_texts(codes[leaves])
         walks = self._cases[0].render_roots(trees, self._code_texts)
         return [f"{walk} AS {self._code(ctx, t)}" for t, walk in zip(trees, walks, strict=True)]
 

@@ -162,8 +162,10 @@ class CaseText:
         text[start[own] + 3 + pieces[first[own]]] = " ELSE "
         text[start[own] + pieces[own] - 1] = " END"
         holes = reached[hole[reached]]
-        by_place = np.argsort(start[holes])
-        self.holes, self._hole_at = holes[by_place], start[holes][by_place]
+        node_at = np.full(len(text), -1, dtype=np.int64)  # places are distinct: no sort
+        node_at[start[holes]] = holes
+        self._hole_at = np.flatnonzero(node_at >= 0)
+        self.holes = node_at[self._hole_at]
         self._text = text
         self._ends = np.cumsum(pieces[by_level[0]])
         self._begins = self._ends - pieces[by_level[0]]
