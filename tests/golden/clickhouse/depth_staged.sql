@@ -4,6 +4,10 @@ SET max_ast_elements = 10000000;
 
 SET max_expanded_ast_elements = 10000000;
 
+SET query_plan_merge_expressions = 0;
+
+SET compile_expressions = 0;
+
 -- tree2sql 0.1.0: scikit-learn RandomForestClassifier (3 trees)
 -- model fingerprint sha256:33dc85aced683fe47dfbfed29c8abc7e1037fbb1e15363e2c71b6d56eb7d3ebb
 -- dialect clickhouse, strategy depth_staged, combine average

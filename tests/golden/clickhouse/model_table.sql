@@ -4,6 +4,10 @@ SET max_ast_elements = 10000000;
 
 SET max_expanded_ast_elements = 10000000;
 
+SET query_plan_merge_expressions = 0;
+
+SET compile_expressions = 0;
+
 DROP TABLE IF EXISTS "__t2s_model_33dc85aced683fe4";
 
 CREATE TABLE "__t2s_model_33dc85aced683fe4" ("tree" Int64, "node" Int64, "feature" Int64, "bound" Nullable(Float64), "next_left" Int64, "next_right" Int64, "next_missing" Int64, "value_0" Nullable(Float64), "value_1" Nullable(Float64), "value_2" Nullable(Float64)) ENGINE = MergeTree ORDER BY tuple();
