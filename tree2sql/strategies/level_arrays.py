@@ -30,7 +30,7 @@ import numpy as np
 from tree2sql.dialects import Profile
 from tree2sql.forest import LEAF, Forest, Tree
 from tree2sql.strategies.base import Context, array_from_texts, require_keys
-from tree2sql.strategies.text_arrays import REQUIRED_KEYS, TextArrays
+from tree2sql.strategies.text_arrays import REQUIRED_KEYS, TOP_LEVELS, TextArrays
 
 
 def breadth_first(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
@@ -52,6 +52,10 @@ class LevelArrays(TextArrays):
     summary = ("per-level node arrays, breadth first, each named in the stage that walks "
                "its level (ClickHouse)")
 
+    def __init__(self, top_levels: int = TOP_LEVELS) -> None:
+        super().__init__(top_levels)
+        self._texts: list[dict[str, list[str]]] | None = None  # by tree: see _levels
+
     def _layout(self, forest: Forest, t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         if t not in self._layouts:
             tree = forest.trees[t]
@@ -68,9 +72,11 @@ class LevelArrays(TextArrays):
         """Where each level starts among tree t's breadth-first positions, and the texts of
         its node arrays by position (written once for the forest; a level's arrays are
         slices)."""
+        if self._texts is None:  # every stage reads slices of them
+            self._texts = self._column_texts(ctx, range(len(ctx.forest.trees)))
         order, _, depth = self._layout(ctx.forest, t)
         starts = np.searchsorted(depth[order], np.arange(int(depth.max()) + 2))
-        return starts, self._column_texts(ctx)[t]
+        return starts, self._texts[t]
 
     def _walk_stage(self, ctx: Context, level: int, keep: list[str], source: str) -> str:
         p = ctx.profile

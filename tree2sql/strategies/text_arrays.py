@@ -56,6 +56,7 @@ from tree2sql.strategies.base import (
 )
 from tree2sql.strategies.nested_case import nested_case, split_conditions
 
+TREES_PER_PASS = 25  # trees whose node arrays are written in one pass (_model_arrays)
 TOP_LEVELS = 0  # levels rendered as nested CASE; measured choice, see benchmarks/README.md
 QUOTE_MARK = "0x0"  # stands for a tree number inside a quoted template name
 REQUIRED_KEYS = ("array_from_text", "array_literal", "array_index", "integer_type",
@@ -100,7 +101,6 @@ class TextArrays(Strategy):
         self._layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         self._quoted: dict[tuple[str, str], str] = {}
         self._written: dict[str, str] = {}  # array name -> its SQL (arrays_at_each_use)
-        self._texts: list[dict[str, list[str]]] | None = None  # see _column_texts
 
     def _layout(self, forest: Forest, t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(order, position, depth by node id) of tree t, computed once."""
@@ -188,22 +188,25 @@ class TextArrays(Strategy):
         return self._model_arrays(ctx)
 
     def _model_arrays(self, ctx: Context) -> list[tuple[str, str]]:
-        """(name, array from text) for every tree's slot, bound and right-child arrays."""
-        element = self._elements(ctx.profile)
-        return [(self._array_name(ctx, what, t), array_from_texts(ctx.profile, items,
-                                                                  element[what]))
-                for t, texts in enumerate(self._column_texts(ctx))
-                for what, items in texts.items()]
+        """(name, array from text) for every tree's slot, bound and right-child arrays,
+        their numbers written `TREES_PER_PASS` trees at a time (each pass has a fixed
+        cost; the texts of a whole grown forest at once would hold millions of strings)."""
+        element, trees = self._elements(ctx.profile), range(len(ctx.forest.trees))
+        arrays = []
+        for start in range(0, len(trees), TREES_PER_PASS):
+            chunk = trees[start:start + TREES_PER_PASS]
+            arrays += [(self._array_name(ctx, what, t),
+                        array_from_texts(ctx.profile, items, element[what]))
+                       for t, texts in zip(chunk, self._column_texts(ctx, chunk), strict=True)
+                       for what, items in texts.items()]
+        return arrays
 
-    def _column_texts(self, ctx: Context) -> list[dict[str, list[str]]]:
-        """Per tree, the number texts of its node arrays (`_node_columns`), written for
-        the whole forest in one pass per kind of array and kept."""
-        if self._texts is None:
-            columns = [self._node_columns(ctx, t) for t in range(len(ctx.forest.trees))]
-            kinds = {what: number_texts_each([c[what] for c in columns]) for what in columns[0]}
-            self._texts = [{what: kinds[what][t] for what in kinds}
-                           for t in range(len(columns))]
-        return self._texts
+    def _column_texts(self, ctx: Context, trees: range) -> list[dict[str, list[str]]]:
+        """Per tree of `trees`, the number texts of its node arrays (`_node_columns`),
+        written in one pass per kind of array."""
+        columns = [self._node_columns(ctx, t) for t in trees]
+        kinds = {what: number_texts_each([c[what] for c in columns]) for what in columns[0]}
+        return [{what: kinds[what][i] for what in kinds} for i in range(len(columns))]
 
     def _array_name(self, ctx: Context, what: str, t: int) -> str:
         """Name of tree t's `what` array (a carried column or a named constant)."""
