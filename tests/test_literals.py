@@ -122,7 +122,8 @@ def test_bulk_shortest_text_is_python_repr():
     assert shortest.shortest_texts(values) == list(map(repr, values.tolist()))
 
 
-@given(st.lists(st.floats(allow_nan=False, allow_infinity=False), min_size=17, max_size=200))
+@given(st.lists(st.floats(allow_nan=False, allow_infinity=False), min_size=shortest.ONE_BY_ONE + 1,
+                max_size=200))
 @settings(max_examples=300, deadline=None)
 def test_bulk_shortest_text_matches_repr_for_any_doubles(xs):
     assert shortest.shortest_texts(np.array(xs)) == list(map(repr, xs))

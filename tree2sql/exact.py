@@ -91,13 +91,11 @@ def float_texts(values: np.ndarray, style: str = SHORTEST, arithmetic: str = "{t
     distinct = distinct.view(np.float64)
     before, after = template.split("{text}")
     if style == SHORTEST:
-        shortest = shortest_texts(distinct)
-        texts = ([f"{before}{t if 'e' in t else t + 'e0'}{after}" for t in shortest]
-                 if before or after else [t if "e" in t else t + "e0" for t in shortest])
+        texts = [t if "e" in t else t + "e0" for t in shortest_texts(distinct)]
     else:
         texts = _exact_arithmetic(distinct, arithmetic)
-        if before or after:
-            texts = [f"{before}{text}{after}" for text in texts]
+    if before or after:
+        texts = [f"{before}{text}{after}" for text in texts]
     return np.array(texts, dtype=object)[where].tolist()
 
 
@@ -126,9 +124,8 @@ def _decimal_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray, divide: boo
                    wrap: tuple[str, ...]) -> None:
     """Write `(S / 1eK)` (fractions; smallest K) or `(S * 1eK)` (integers past 2**53;
     largest K), between the two parts of `wrap`, into `forms[at]` where one IEEE
-    operation on an integer S below 2**53 gives
-    exactly x. The integer nearest x * 10**K may be one off, so its neighbours are tried
-    too (`_candidates`)."""
+    operation on an integer S below 2**53 gives exactly x. The integer nearest x * 10**K
+    may be one off, so its neighbours are tried too (`_candidates`)."""
     if divide:
         at, k, digits = _smallest_quotients(x, at)
     else:  # rare (integers past 2**53): every K tried at once

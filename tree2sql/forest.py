@@ -7,6 +7,7 @@ of nodes stays a handful of arrays rather than millions of Python objects.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 from dataclasses import dataclass, field
 from enum import Enum
@@ -116,13 +117,10 @@ class Tree:
     def node_depths(self) -> np.ndarray:
         """Depth of every node (root 0), read-only: worked out once per tree, since the
         planner and the shapes ask for it again and again."""
-        if "_depths" not in self.__dict__:  # frozen: set past the dataclass's guard
-            depths = self._walk_depths()
-            depths.flags.writeable = False
-            object.__setattr__(self, "_depths", depths)
-        return self.__dict__["_depths"]
+        return self._depths
 
-    def _walk_depths(self) -> np.ndarray:
+    @functools.cached_property
+    def _depths(self) -> np.ndarray:
         """One numpy step per level, no per-node Python."""
         depth = np.zeros(self.n_nodes, dtype=np.int64)
         frontier = np.zeros(1, dtype=np.int64)
@@ -132,6 +130,7 @@ class Tree:
             inner = frontier[self.left[frontier] != LEAF]
             frontier = np.concatenate((self.left[inner], self.right[inner]))
             level += 1
+        depth.flags.writeable = False  # shared by every caller
         return depth
 
     def preorder(self) -> list[int]:

@@ -30,6 +30,7 @@ except ImportError:  # pragma: no cover - orjson is a declared dependency
 _FIVE_ZEROS = re.compile(rb"0\.0000([1-9])(\d*)")  # 1e-5 <= |x| < 1e-4 in fixed notation
 _BARE_EXPONENT = re.compile(rb"e(?=\d)")
 _ONE_DIGIT_EXPONENT = re.compile(rb"e([+-])(\d)(?!\d)")
+ONE_BY_ONE = 16  # at most this many values: one call each (no probe, no bulk call)
 # Values at the edges of each notation range (and of the double range), for the probe.
 _EDGES = [0.0, -0.0, 5e-324, 2.2250738585072014e-308, 1e-7, 9.5e-6, 1e-5, 1.5e-5, 9.999e-5,
           1e-4, 1.25e-4, 0.1, 1.0, -123.25, 1e15, 1234567890123456.0, 1e16, 1.5e16, 1e22,
@@ -39,7 +40,7 @@ _EDGES = [0.0, -0.0, 5e-324, 2.2250738585072014e-308, 1e-7, 9.5e-6, 1e-5, 1.5e-5
 def shortest_texts(values: np.ndarray) -> list[str]:
     """repr() of each value, in bulk."""
     floats = np.ascontiguousarray(values, dtype=np.float64).ravel()
-    if len(floats) <= 16 or not _fast_path_matches_repr():
+    if len(floats) <= ONE_BY_ONE or not _fast_path_matches_repr():
         return list(map(float.__repr__, floats.tolist()))
     texts = _fast(floats)
     for at in np.flatnonzero(~np.isfinite(floats)).tolist():  # JSON has no inf or nan
@@ -51,7 +52,7 @@ def integer_texts_bulk(values: np.ndarray) -> list[str]:
     """str() of each 64-bit integer, in bulk (JSON writes integers as plain digits, so no
     probe is needed)."""
     integers = np.ascontiguousarray(values, dtype=np.int64).ravel()
-    if orjson is None or len(integers) <= 16:
+    if orjson is None or len(integers) <= ONE_BY_ONE:
         return list(map(str, integers.tolist()))
     return orjson.dumps(integers, option=orjson.OPT_SERIALIZE_NUMPY)[1:-1].decode(
         "ascii").split(",")

@@ -7,7 +7,7 @@ benchmarks/README.md), which is why other strategies exist.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -173,13 +173,9 @@ class CaseText:
 
     def render_root(self, i: int, leaf_value: LeafValue, offset: int = 0) -> str:
         """The text from root i, holes filled with `leaf_value(node - offset)`."""
-        begin, end = self._begins[i], self._ends[i]
-        first, last = (self._hole_ends[i - 1] if i else 0), self._hole_ends[i]
-        text = self._text[begin:end].copy()
-        text[self._hole_at[first:last] - begin] = leaf_literals(
-            leaf_value, self.holes[first:last] - offset)
-        return "".join(text.tolist())
-
+        pieces, _ = self._filled(range(i, i + 1),
+                                 lambda nodes: leaf_literals(leaf_value, nodes - offset))
+        return "".join(pieces)
 
     def render_roots(self, roots: range, texts: np.ndarray) -> list[str]:
         """The text from each of `roots` (consecutive), holes filled with `texts[node]`
@@ -187,14 +183,20 @@ class CaseText:
         `render_root` would copy and fill per root."""
         if not roots:
             return []
+        pieces, begin = self._filled(roots, texts.__getitem__)
+        return ["".join(pieces[int(self._begins[i]) - begin:int(self._ends[i]) - begin])
+                for i in roots]
+
+    def _filled(self, roots: range, literals: Callable[[np.ndarray], object],
+                ) -> tuple[list[str], int]:
+        """The pieces from the first of `roots` to the end of the last, holes filled with
+        `literals(hole nodes)`, and where they begin in the layout."""
         begin, end = int(self._begins[roots.start]), int(self._ends[roots.stop - 1])
         first = int(self._hole_ends[roots.start - 1]) if roots.start else 0
         last = int(self._hole_ends[roots.stop - 1])
         text = self._text[begin:end].copy()
-        text[self._hole_at[first:last] - begin] = texts[self.holes[first:last]]
-        pieces = text.tolist()
-        return ["".join(pieces[int(self._begins[i]) - begin:int(self._ends[i]) - begin])
-                for i in roots]
+        text[self._hole_at[first:last] - begin] = literals(self.holes[first:last])
+        return text.tolist(), begin
 
 
 def nested_case(tree: Tree, splits: Splits, leaf_value: LeafValue, root: int = 0,
