@@ -53,6 +53,9 @@ class ScoringRequest:
     combine: Combine = Combine.AVERAGE
     strategy: str | None = None
     reasons: int = 0  # K reason codes per row (tree2sql.reasons); 0 = none
+    # The table is checked to be a stored one, whose rows have the profile's physical
+    # `row_identity` (tree2sql.schema.with_row_identity): shapes that join on it may be used.
+    row_identity: bool = False
 
 
 @dataclass(frozen=True)
@@ -124,7 +127,8 @@ def compile_forest(forest: Forest, request: ScoringRequest, dialect: str | Profi
         check_reasons(forest, request.reasons, request.combine is Combine.MAJORITY)
     outputs = [*request.keys, *scores, *([label] if label else []), *reasons]
     _check_names(request, outputs)
-    strategy, reason = choose(forest, profile, request.strategy, persistent)
+    strategy, reason = choose(forest, profile, request.strategy, persistent,
+                              request.row_identity)
     builder = _QueryBuilder(forest, profile, request, features, strategy)
     header = (f"-- tree2sql {__version__}: {forest.source}\n"
               f"-- model fingerprint sha256:{forest.fingerprint()}\n"
@@ -141,7 +145,7 @@ def compile_forest(forest: Forest, request: ScoringRequest, dialect: str | Profi
 def compile_leaf_ids(forest: Forest, request: ScoringRequest, dialect: str = "duckdb") -> str:
     """Keys plus each tree's leaf node id (`__t2s_leaf<t>`): for locating disagreements."""
     profile = load_profile(dialect)
-    strategy, _ = choose(forest, profile, request.strategy)
+    strategy, _ = choose(forest, profile, request.strategy, row_identity=request.row_identity)
     builder = _QueryBuilder(forest, profile, request,
                             feature_columns(forest, request.columns), strategy)
     return builder.render_leaf_ids()
@@ -179,6 +183,9 @@ class _QueryBuilder:
         self._built: Context | None = None
         self._checked_columns: list[str] = []  # the columns of the checked input stage
         self._group_stages: set[str] = set()  # stages of `_grouped_sums`, all fenced
+        identity = profile.raw.get("row_identity", []) if strategy.reads_row_identity else []
+        self.identity = [(expression, self.internal(f"row{i}"))
+                         for i, expression in enumerate(identity)]
 
     def render(self, header: str, scores: list[str], label: str | None,
                progress: Callable[[int], None] | None, reasons: Sequence[str] = ()) -> str:
@@ -250,12 +257,14 @@ class _QueryBuilder:
         constants = [p.raw["constant_alias"].format(value=value, name=name)
                      for name, value in self.strategy.constants(ctx)]
         fence = p.raw.get("cte_materialized", "")
+        inlined = self.strategy.inlined_stages(ctx)
         parts = [header, "WITH "]
         for item in constants:
             parts += [item, ",\n"]
         for name, body in ctes:
-            parts += [name, f" AS {fence + ' ' if fence and name in fenced else ''}(\n", body,
-                      "\n),\n"]
+            mark = fence if fence and name in fenced else \
+                p.raw["cte_inlined"] if name in inlined else ""
+            parts += [name, f" AS {mark + ' ' if mark else ''}(\n", body, "\n),\n"]
         parts[-1] = "\n)\n"
         parts.append(select)
         return "".join(parts)
@@ -264,7 +273,8 @@ class _QueryBuilder:
         """Built once: its per-tree bounds are shared by the query and the setup statements."""
         if self._built is None:
             self._built = Context.build(self.forest, self.profile, self.internal("checked"),
-                                        self.keys, self.internal("ok"), self.features)
+                                        self.keys, self.internal("ok"), self.features,
+                                        [name for _, name in self.identity])
         return self._built
 
     def _input_stages(self) -> list[tuple[str, str]]:
@@ -293,7 +303,8 @@ class _QueryBuilder:
         cast = [f"{value} AS {alias}" for value, alias in zip(values, inputs, strict=True)]
         self._checked_columns = [*self.keys, *inputs, self.internal("ok"),
                                  *self.features[self.forest.n_features:]]
-        return (f"SELECT {self._select_list(self.keys + cast)}\n"
+        identity = [f"{expression} AS {name}" for expression, name in self.identity]
+        return (f"SELECT {self._select_list(identity + self.keys + cast)}\n"
                 f"FROM {p.qualified(self.request.table)}")
 
     def _derived_columns(self) -> list[str]:

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from enum import Enum
 from typing import Any
 
@@ -41,7 +41,7 @@ from tree2sql.manifest import (
     upgrade_statements,
     verification_statement,
 )
-from tree2sql.schema import check_source
+from tree2sql.schema import check_source, with_row_identity
 from tree2sql.sql_functions import drop_statement, function_statement
 from tree2sql.verify import Report
 
@@ -120,6 +120,7 @@ def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
                      text_columns(forest, scoring.columns))
         if previous is None and request.form is not Form.FUNCTION:
             _refuse_foreign_object(engine, request.name)
+        request = replace(request, scoring=with_row_identity(engine, scoring))
     creates, compiled = _create_statements(profile, forest, request)
     deployment = Deployment(
         name=request.name, version=max((d.version for d in history), default=0) + 1,

@@ -18,6 +18,7 @@ from tree2sql.engines import Engine
 from tree2sql.errors import UserError
 from tree2sql.forest import Forest
 from tree2sql.manifest import Deployment
+from tree2sql.schema import with_row_identity
 from tree2sql.verify import Report, verify
 
 SAMPLE_TABLE = "t2s_verify_sample"
@@ -55,6 +56,8 @@ def verify_compiled(estimator: Any, forest: Forest, engine: Engine, request: Sco
         if count == 0:
             raise UserError(f"table {request.table!r} has no rows to verify",
                             "load rows into it first")
+        # The shape the source itself would get (a view: no row identity), not the sample's.
+        request = with_row_identity(engine, request)
         return verify(estimator, forest, engine, replace(request, table=table), progress)
 
 

@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import replace
 
+from tree2sql.compiler import ScoringRequest
 from tree2sql.engines import Engine
 from tree2sql.errors import UserError
 
@@ -73,3 +75,19 @@ def _check_keys(engine: Engine, table: str, keys: Sequence[str]) -> None:
                         "name key columns that are unique and never NULL (--key may repeat)")
 
 
+
+
+def with_row_identity(engine: Engine, request: ScoringRequest,
+                      table: str | None = None) -> ScoringRequest:
+    """`request`, marked `row_identity` when `table` (default: its own) is a stored table
+    with the dialect's physical row identity (profile `row_identity_check`), so that the
+    planner may take shapes that join on it (tree2sql.strategies.scan_groups)."""
+    from tree2sql.dialects import load_profile
+
+    p = load_profile(engine.dialect)
+    check = p.raw.get("row_identity_check")
+    if not check:
+        return request
+    name = p.string(p.qualified(table or request.table))
+    found = engine.query(check.format(name=name))
+    return replace(request, row_identity=bool(len(next(iter(found.values()), []))))

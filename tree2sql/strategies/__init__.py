@@ -22,12 +22,16 @@ from tree2sql.strategies.level_arrays import LevelArrays
 from tree2sql.strategies.model_table import ModelTable
 from tree2sql.strategies.nested_case import NestedCase
 from tree2sql.strategies.node_arrays import NodeArrays
+from tree2sql.strategies.scan_groups import ScanGroups
 from tree2sql.strategies.text_arrays import TextArrays
 
 STRATEGIES: dict[str, type[Strategy]] = {
     cls.name: cls for cls in (NestedCase, NodeArrays, DepthStaged, ModelTable, TextArrays,
-                              CaseLeaves, LevelArrays, LeafCounts, DeclaredArrays)}
+                              CaseLeaves, LevelArrays, LeafCounts, DeclaredArrays,
+                              ScanGroups)}
 AST_ELEMENTS_PER_BYTE = 1 / 6  # rough parse-tree nodes per statement byte (estimate)
+NO_ROW_IDENTITY = ("it joins on each row's physical identity, and the source is not known to "
+                   "be a stored table (verify and deploy check it; a view has none)")
 
 __all__ = ["STRATEGIES", "Context", "Needs", "Strategy", "choose", "limit_problem"]
 
@@ -65,9 +69,10 @@ def limit_problem(needs: Needs, forest: Forest, profile: Profile) -> str | None:
 
 
 def choose(forest: Forest, profile: Profile, forced: str | None = None,
-           persistent: bool = False) -> tuple[Strategy, str]:
+           persistent: bool = False, row_identity: bool = False) -> tuple[Strategy, str]:
     """The strategy to use and a sentence saying why. `persistent`: the SQL goes into a
-    view or function, which cannot read a session-scoped shape's setup."""
+    view or function, which cannot read a session-scoped shape's setup. `row_identity`:
+    the source is checked to be a stored table (see Strategy.reads_row_identity)."""
     if forced:
         if forced not in STRATEGIES:
             raise UserError(f"unknown strategy {forced!r}",
@@ -78,6 +83,8 @@ def choose(forest: Forest, profile: Profile, forced: str | None = None,
                             "or choose another --strategy")
         strategy = STRATEGIES[forced]()
         problem = limit_problem(strategy.needs(forest, profile), forest, profile)
+        if strategy.reads_row_identity and not row_identity:
+            problem = ", ".join(filter(None, [problem, NO_ROW_IDENTITY]))
         warning = f"; beware: {problem}" if problem else ""
         return strategy, f"{forced} (forced by --strategy){warning}"
     passed_over = []
@@ -89,6 +96,9 @@ def choose(forest: Forest, profile: Profile, forced: str | None = None,
         if persistent and cls.session_scoped:
             passed_over.append(f"not {name}: a view or function cannot read its session "
                                "variables")
+            continue
+        if cls.reads_row_identity and not row_identity:
+            passed_over.append(f"not {name}: {NO_ROW_IDENTITY}")
             continue
         strategy = cls()
         problem = limit_problem(strategy.needs(forest, profile), forest, profile)

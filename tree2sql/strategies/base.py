@@ -123,8 +123,9 @@ class Context:
 
     `source` is a relation with the pass-through key columns (`keys`, already quoted),
     the guard column `ok` and one double column per model feature (`features[i]`, with
-    NULL for missing). `bounds[t][n]` is node n's double bound in tree t (x <= bound
-    goes left; see tree2sql.exact).
+    NULL for missing); for a shape that `reads_row_identity`, also the columns of the
+    row's physical identity (`identity`). `bounds[t][n]` is node n's double bound in tree
+    t (x <= bound goes left; see tree2sql.exact).
     """
 
     forest: Forest
@@ -134,14 +135,16 @@ class Context:
     ok: str
     features: list[str]
     bounds: list[np.ndarray]
+    identity: list[str]
 
     @classmethod
     def build(cls, forest: Forest, profile: Profile, source: str, keys: list[str], ok: str,
-              features: list[str]) -> Context:
+              features: list[str], identity: list[str]) -> Context:
         every = bounds(np.concatenate([tree.threshold for tree in forest.trees]),
                        forest.comparison)  # one pass for the forest, then a view per tree
         ends = np.cumsum([tree.n_nodes for tree in forest.trees])
-        return cls(forest, profile, source, keys, ok, features, np.split(every, ends[:-1]))
+        return cls(forest, profile, source, keys, ok, features, np.split(every, ends[:-1]),
+                   identity)
 
     def prefix(self, name: str) -> str:
         """A quoted internal name (never clashes with user columns, see compiler)."""
@@ -212,6 +215,9 @@ class Strategy(ABC):
     # Its setup lives in the session only (e.g. session variables): no persisted view or
     # function can read it, so the planner passes it over for those.
     session_scoped: bool = False
+    # It joins scans of the source on each row's physical identity (profile `row_identity`),
+    # which only a stored table has: the planner takes it for a source checked to be one.
+    reads_row_identity: bool = False
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         """Extra CTEs (name, SELECT body) after the input; the last one becomes the source."""
@@ -221,6 +227,11 @@ class Strategy(ABC):
         """Names of its stages that later SQL reads a column of many times: the compiler
         fences them where the profile can (`cte_materialized`), so that an engine that
         inlines CTEs does not copy the column's expression into every reference."""
+        return set()
+
+    def inlined_stages(self, ctx: Context) -> set[str]:
+        """Names of stages it reads several times that must still be computed where each
+        read is (profile `cte_inlined`), not once into a store the reads share."""
         return set()
 
     def constants(self, ctx: Context) -> list[tuple[str, str]]:

@@ -57,16 +57,24 @@ class CaseLeaves(Strategy):
         return np.where(is_leaf, np.cumsum(is_leaf), 0)
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
+        return [(ctx.prefix("leaves"), self.walk_stage(ctx, [*ctx.keys, ctx.ok],
+                                                       self.walks(ctx)))]
+
+    def walks(self, ctx: Context) -> list[str]:
+        """Each tree's walk as a select item `CASE ... END AS leaf_t`, in tree order."""
         require_keys(ctx.profile, REQUIRED_KEYS, self.name)
         cases, _ = every_tree(ctx)
         trees = range(len(ctx.forest.trees))
         numbers = integer_texts(np.concatenate([self._leaf_numbers(ctx, t) for t in trees]))
-        walks = [f"{case} AS {self._leaf(ctx, t)}"
-                 for t, case in zip(trees, cases.render_roots(trees, numbers), strict=True)]
+        return [f"{case} AS {self._leaf(ctx, t)}"
+                for t, case in zip(trees, cases.render_roots(trees, numbers), strict=True)]
+
+    @staticmethod
+    def walk_stage(ctx: Context, columns: list[str], walks: list[str]) -> str:
+        """A fenced SELECT of `columns` and `walks` over the source."""
         fence = ctx.profile.raw.get("leaf_stage_fence", "")
-        body = ("SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, *walks])
+        return ("SELECT " + ",\n  ".join([*columns, *walks])
                 + f"\nFROM {ctx.source}" + (f"\n{fence}" if fence else ""))
-        return [(ctx.prefix("leaves"), body)]
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         p = ctx.profile

@@ -1,0 +1,140 @@
+"""PostgreSQL's scan_groups shape: groups of trees walked by scans of their own, joined on
+each row's physical identity, agree exactly with scikit-learn, and are taken only where
+that identity exists (a stored table, checked in the catalog; never a view).
+
+References outside the project: scikit-learn's own predict_proba (via tree2sql.verify),
+the datasets scikit-learn bundles (sources in tests/engine_rows.py), and PostgreSQL's
+documented system columns `tableoid` and `ctid` ("System Columns"), run on a real server.
+"""
+
+from __future__ import annotations
+
+import uuid
+
+import pytest
+from engine_rows import KEY, assert_bar, cases, load_rows, score
+
+from tree2sql.compiler import ScoringRequest, compile_forest
+from tree2sql.deploy import DeployRequest, Form, deploy
+from tree2sql.dialects import load_profile
+from tree2sql.engines import connect
+from tree2sql.live_verify import verify_compiled
+from tree2sql.schema import with_row_identity
+from tree2sql.strategies import scan_groups
+from tree2sql.verify import verify
+
+
+@pytest.fixture
+def small_scans(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Five trees per scan, so the 12-tree test forests take three scans and two joins."""
+    monkeypatch.setattr(scan_groups, "TREES_PER_SCAN", 5)
+
+
+@pytest.fixture
+def pg(pg_url):
+    """A connection whose tables live in a schema of their own, dropped afterwards."""
+    schema = f"t2s_scan_{uuid.uuid4().hex[:10]}"
+    engine = connect(pg_url)
+    engine.execute(f'CREATE SCHEMA "{schema}"')
+    engine.execute(f'SET search_path TO "{schema}"')
+    yield engine
+    engine.execute(f'DROP SCHEMA "{schema}" CASCADE')
+    engine.close()
+
+
+def test_groups_are_consecutive_and_near_equal() -> None:
+    assert scan_groups.scan_groups(100) == [range(i, i + 20) for i in range(0, 100, 20)]
+    assert scan_groups.scan_groups(30) == [range(0, 15), range(15, 30)]
+    assert scan_groups.scan_groups(41) == [range(0, 14), range(14, 27), range(27, 41)]
+    assert scan_groups.scan_groups(7) == [range(0, 7)]
+
+
+def test_planner_takes_it_only_for_a_checked_table(small_scans) -> None:
+    forest = cases()["wine"].forest  # 12 trees
+    unknown = compile_forest(forest, ScoringRequest("t", (KEY,)), "postgres")
+    assert unknown.strategy == "case_leaves"
+    assert "not scan_groups: it joins on each row's physical identity" in unknown.reason
+    table = compile_forest(forest, ScoringRequest("t", (KEY,), row_identity=True), "postgres")
+    assert table.strategy == "scan_groups"
+    assert table.sql.count("\nJOIN (") == 2  # three scans of 4 trees each
+    assert 'tableoid AS "__t2s_row0"' in table.sql and 'ctid AS "__t2s_row1"' in table.sql
+    assert '"__t2s_checked" AS NOT MATERIALIZED (' in table.sql
+    forced = compile_forest(forest, ScoringRequest("t", (KEY,), strategy="scan_groups"),
+                            "postgres")
+    assert "beware: it joins on each row's physical identity" in forced.reason
+
+
+def test_one_scan_is_left_to_case_leaves() -> None:
+    """Twelve trees fit one scan of 20: the join would buy nothing."""
+    compiled = compile_forest(cases()["wine"].forest,
+                              ScoringRequest("t", (KEY,), row_identity=True), "postgres")
+    assert compiled.strategy == "case_leaves"
+    assert "12 trees fit one scan" in compiled.reason
+
+
+def test_engines_without_a_row_identity_are_left_alone() -> None:
+    engine = connect(None)  # DuckDB: its profile names no row identity
+    request = ScoringRequest("t", (KEY,))
+    assert with_row_identity(engine, request) is request
+    engine.close()
+
+
+@pytest.mark.parametrize("name", ["breast_cancer_missing", "iris", "diabetes"])
+def test_several_scans_agree(pg, small_scans, name) -> None:
+    """NaN and NULL cells, float32 boundary rows and refused rows through three scans."""
+    case = cases()[name]
+    report = score(pg, case, "scan_groups")
+    assert report.strategy == "scan_groups"
+    assert_bar(report, case)
+
+
+def test_verify_finds_the_identity_of_tables_and_not_views(pg, small_scans) -> None:
+    """`verify --url --table` checks the shape the source would get, though it scores a
+    sample copied into a temporary table (which has the identity)."""
+    case = cases()["breast_cancer_missing"]
+    profile = load_profile("postgres")
+    names = case.forest.feature_names
+    load_rows(pg, profile, "plain", case.X, names, case.null_mask)
+    pg.execute('CREATE VIEW "seen" AS SELECT * FROM "plain"')
+    for table, shape in (("plain", "scan_groups"), ("seen", "case_leaves")):
+        report = verify_compiled(case.estimator, case.forest, pg,
+                                 ScoringRequest(table, (KEY,)), rows=None)
+        assert report.strategy == shape
+        assert_bar(report, case)
+
+
+def test_partitions_repeat_ctids_and_the_table_oid_keeps_rows_apart(pg, small_scans) -> None:
+    """Each partition numbers its rows' places from the start, so ctid alone would join
+    rows of different partitions; (tableoid, ctid) does not."""
+    case = cases()["iris"]
+    profile = load_profile("postgres")
+    names = case.forest.feature_names
+    load_rows(pg, profile, "staged", case.X, names, case.null_mask)
+    columns = ", ".join(f'"{n}" DOUBLE PRECISION' for n in names)
+    pg.execute(f'CREATE TABLE "split" ("{KEY}" INTEGER, {columns}) '
+               f'PARTITION BY RANGE ("{KEY}")')
+    half = len(case.X) // 2
+    pg.execute(f'CREATE TABLE "split_a" PARTITION OF "split" FOR VALUES FROM (MINVALUE) '
+               f"TO ({half})")
+    pg.execute(f'CREATE TABLE "split_b" PARTITION OF "split" FOR VALUES FROM ({half}) '
+               "TO (MAXVALUE)")
+    pg.execute('INSERT INTO "split" SELECT * FROM "staged"')
+    repeated = pg.query('SELECT COUNT(*) - COUNT(DISTINCT ctid) AS n FROM "split"')
+    assert int(repeated["n"][0]) > 0  # the hazard is real in this table
+    request = with_row_identity(pg, ScoringRequest("split", (KEY,)))
+    assert request.row_identity
+    report = verify(case.estimator, case.forest, pg, request)  # the table itself, no sample
+    assert report.strategy == "scan_groups"
+    assert_bar(report, case)
+
+
+@pytest.mark.parametrize("form", [Form.VIEW, Form.INCREMENTAL])
+def test_deploy_over_a_table_uses_it_and_verifies_live(pg, small_scans, form) -> None:
+    case = cases()["wine"]
+    load_rows(pg, load_profile("postgres"), "bottles", case.X, case.forest.feature_names,
+              case.null_mask)
+    request = DeployRequest(f"wine_{form.value}", form, ScoringRequest("bottles", (KEY,)))
+    result, report = deploy(pg, case.estimator, case.forest, request)
+    assert result.compiled.strategy == "scan_groups"
+    assert report is not None and report.agrees, report.to_text()
+    assert report.rows > 0
