@@ -188,6 +188,23 @@ def test_level_arrays_agree_below_a_nested_case_top(clickhouse, monkeypatch: pyt
     assert_bar(report, case)
 
 
+def test_level_arrays_test_for_finished_rows_only_below_a_leaf() -> None:
+    """A tree's step tests for rows already at a leaf only on the levels below its
+    shallowest leaf; elsewhere no row can have finished, and each test is planning time
+    (benchmarks/README.md, ClickHouse shapes). Nothing in the walk is Nullable. Breast
+    cancer Wisconsin: Street, Wolberg & Mangasarian (1993), UCI."""
+    forest = cases()["breast_cancer_missing"].forest
+    sql = compile_forest(forest, ScoringRequest("t", ("k",)), "clickhouse").sql
+    shallowest = [int(tree.node_depths()[tree.is_leaf()].min()) for tree in forest.trees]
+    tested = sum(max(0, tree.depth() - 1 - low)
+                 for tree, low in zip(forest.trees, shallowest, strict=True))
+    walked = sum(tree.depth() for tree in forest.trees)
+    assert 0 < tested < walked
+    assert sql.count(" <= 0 THEN ") == tested
+    assert sql.count('"__t2s_xs"[') == walked
+    assert "Array(Nullable" not in sql
+
+
 def test_clickhouse_takes_level_arrays_past_the_parse_tree_limit() -> None:
     """A forest whose nested CASE would pass ClickHouse's default max_ast_elements (50000,
     ClickHouse docs, Settings) gets its node arrays as named constants: one literal per

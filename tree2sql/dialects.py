@@ -93,6 +93,17 @@ class Profile:
         e.g. PostgreSQL's `SET jit = off`): compile prints them, verify and deploy run them."""
         return tuple(self.raw.get("session_settings", ()))
 
+    @property
+    def array_double_type(self) -> str:
+        """Element type of constant arrays of doubles, which never hold NULL (profile key
+        `array_double_type`; default `double_type`)."""
+        return self.raw.get("array_double_type", self.double_type)
+
+    def indicator(self, condition: str) -> str:
+        """1 where `condition` holds, else 0 (profile key `indicator` over {condition})."""
+        return self.raw.get("indicator", "CASE WHEN {condition} THEN 1 ELSE 0 END").format(
+            condition=condition)
+
     def cast_double(self, sql: str) -> str:
         return f"CAST({sql} AS {self.double_type})"
 

@@ -6,17 +6,23 @@ arrays cost planning time in every stage (8-12 s of 20-27 s at the default workl
 grown forest ran out of memory. A step only ever reads the nodes of one level, so here the
 nodes are numbered breadth first (each level's nodes consecutive, a node's two children
 next to each other) and every level has its own small arrays, defined by a WITH inside the
-stage that walks that level:
+stage that walks that level. A tree's column holds its node's position less the nodes of
+the levels above the one it walks next (S before this level, T before the next), so a
+level's arrays are read at the column itself and its right children are stored less T:
 
-    n = CASE WHEN n <= S THEN n
-             ELSE right[n - S] - CASE WHEN xs[slot[n - S]] <= bound[n - S] THEN 1 ELSE 0 END
-             END
+    r = CASE WHEN r <= 0 THEN r - (T - S) ELSE right[r] - (xs[slot[r]] <= bound[r]) END
 
-where S counts the nodes of the levels above, and a left child sits just before its right
-sibling; each array is read once. A row whose tree reached a leaf on an earlier level keeps
-its node (n <= S); a leaf on this level is its own right child with the undecided slot, so
-it keeps its node too. The arrays themselves, the row array, missing values and leaf values
-by position are text_arrays'.
+A left child sits just before its right sibling; each array is read once. A row whose tree
+reached a leaf on an earlier level keeps its node (r <= 0, moved to the next level's base);
+a tree with no leaf above this level has no such row, so its step is the ELSE branch alone.
+A leaf on this level is its own right child with the undecided slot, so it keeps its node
+too. Each piece the step leaves out is planning time: ClickHouse analyses every function
+of every step (the `- S` of each array read and the test for finished rows cost 15-20%
+of it; measured, benchmarks/README.md). The comparison is its own 1 or 0 (profile key
+`indicator`), and the arrays of doubles are not Nullable (`array_double_type`), so nothing
+in the walk is: a Nullable comparison made every later step Nullable and slower. The
+arrays themselves, the row array, missing values and leaf values by position are
+text_arrays'.
 
 Profile keys: text_arrays' keys and `constant_alias` over {value} and {name}. Spark, which
 has no named constants, ran this layout with each array written where it is read at half
@@ -55,6 +61,8 @@ class LevelArrays(TextArrays):
     def __init__(self, top_levels: int = TOP_LEVELS) -> None:
         super().__init__(top_levels)
         self._texts: list[dict[str, list[str]]] | None = None  # by tree: see _levels
+        self._shallowest: dict[int, int] = {}  # by tree: see _shallowest_leaf
+        self._level_starts: dict[int, np.ndarray] = {}  # by tree: see _starts
 
     def _layout(self, forest: Forest, t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         if t not in self._layouts:
@@ -68,15 +76,36 @@ class LevelArrays(TextArrays):
     def constants(self, ctx: Context) -> list[tuple[str, str]]:
         return []  # each stage names its own level's arrays
 
+    def _starts(self, forest: Forest, t: int) -> np.ndarray:
+        """Where each level starts among tree t's breadth-first positions (one more entry
+        than levels: the end); kept, since every stage asks."""
+        if t not in self._level_starts:
+            order, _, depth = self._layout(forest, t)
+            self._level_starts[t] = np.searchsorted(depth[order],
+                                                    np.arange(int(depth.max()) + 2))
+        return self._level_starts[t]
+
     def _levels(self, ctx: Context, t: int) -> tuple[np.ndarray, dict[str, list[str]]]:
-        """Where each level starts among tree t's breadth-first positions, and the texts of
-        its node arrays by position (written once for the forest; a level's arrays are
-        slices)."""
+        """`_starts` of tree t, and the texts of its node arrays by position (written once
+        for the forest; a level's arrays are slices)."""
         if self._texts is None:  # every stage reads slices of them
             self._texts = self._column_texts(ctx, range(len(ctx.forest.trees)))
+        return self._starts(ctx.forest, t), self._texts[t]
+
+    def _node_columns(self, ctx: Context, t: int) -> dict[str, np.ndarray]:
+        """text_arrays' arrays in breadth-first order, each right child less the nodes
+        above its level (what the walk's column holds once it is there)."""
+        columns = super()._node_columns(ctx, t)
         order, _, depth = self._layout(ctx.forest, t)
-        starts = np.searchsorted(depth[order], np.arange(int(depth.max()) + 2))
-        return starts, self._texts[t]
+        columns["right"] = columns["right"] - self._starts(ctx.forest, t)[depth[order] + 1]
+        return columns
+
+    def _start_base(self, ctx: Context, t: int) -> int:
+        depth = self._depths(ctx.forest)[t]
+        return int(self._starts(ctx.forest, t)[min(self.top_levels, depth)])
+
+    def _leaf_base(self, ctx: Context, t: int) -> int:
+        return int(self._starts(ctx.forest, t)[self._depths(ctx.forest)[t]])
 
     def _walk_stage(self, ctx: Context, level: int, keep: list[str], source: str) -> str:
         p = ctx.profile
@@ -94,13 +123,21 @@ class LevelArrays(TextArrays):
             constants += [p.raw["constant_alias"].format(
                 value=array_from_texts(p, items[above:end], element[what]), name=read[what])
                 for what, items in texts.items()]
-            i = f"{n} - {above}"
-            value = self._index(ctx, ctx.prefix("xs"), self._index(ctx, read["slot"], i))
-            bound, right = (self._index(ctx, read[what], i) for what in ("bound", "right"))
-            steps.append(f"CASE WHEN {n} <= {above} THEN {n} ELSE {right} - "
-                         f"CASE WHEN {value} <= {bound} THEN 1 ELSE 0 END END AS {n}")
+            value = self._index(ctx, ctx.prefix("xs"), self._index(ctx, read["slot"], n))
+            bound, right = (self._index(ctx, read[what], n) for what in ("bound", "right"))
+            step = f"{right} - {p.indicator(f'{value} <= {bound}')}"
+            if self._shallowest_leaf(ctx.forest, t) < tree_level:  # some rows are done
+                step = f"CASE WHEN {n} <= 0 THEN {n} - {end - above} ELSE {step} END"
+            steps.append(f"{step} AS {n}")
         named = "WITH " + ",\n".join(constants) + "\n" if constants else ""
         return named + "SELECT " + ",\n  ".join([*keep, *steps]) + f"\nFROM {source}"
+
+    def _shallowest_leaf(self, forest: Forest, t: int) -> int:
+        """Depth of tree t's shallowest leaf (asked once per level: kept)."""
+        if t not in self._shallowest:
+            _, _, depth = self._layout(forest, t)
+            self._shallowest[t] = int(depth[forest.trees[t].left == LEAF].min())
+        return self._shallowest[t]
 
     def _parsed_elements(self, forest: Forest, profile: Profile) -> int:
         """Each level's three arrays are read once, by the stage that walks the level."""

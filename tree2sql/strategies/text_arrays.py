@@ -99,6 +99,7 @@ class TextArrays(Strategy):
     def __init__(self, top_levels: int = TOP_LEVELS) -> None:
         self.top_levels = top_levels
         self._layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        self._tree_depths: tuple[Forest, list[int]] | None = None  # see _depths
         self._quoted: dict[tuple[str, str], str] = {}
         self._written: dict[str, str] = {}  # array name -> its SQL (arrays_at_each_use)
 
@@ -111,7 +112,10 @@ class TextArrays(Strategy):
         return self._layouts[t]
 
     def _depths(self, forest: Forest) -> list[int]:
-        return [int(self._layout(forest, t)[2].max()) for t in range(len(forest.trees))]
+        """Each tree's depth, listed once per forest (every stage and term asks)."""
+        if self._tree_depths is None or self._tree_depths[0] is not forest:
+            self._tree_depths = (forest, [tree.depth() for tree in forest.trees])
+        return self._tree_depths[1]
 
     def depth(self, forest: Forest) -> int:
         return max(self._depths(forest))
@@ -215,7 +219,7 @@ class TextArrays(Strategy):
     @staticmethod
     def _elements(profile: Profile) -> dict[str, str]:
         """SQL element type of each node array."""
-        return {"slot": profile.raw["integer_type"], "bound": profile.double_type,
+        return {"slot": profile.raw["integer_type"], "bound": profile.array_double_type,
                 "right": profile.raw["integer_type"]}
 
     def _node_columns(self, ctx: Context, t: int) -> dict[str, np.ndarray]:
@@ -259,26 +263,38 @@ class TextArrays(Strategy):
         return f"CASE WHEN {value} <= {bound} THEN {n} + 1 ELSE {right} END AS {n}"
 
     def _start(self, ctx: Context, t: int) -> str:
-        """Position (1-based) of the node tree t reaches after its top levels: a nested CASE,
-        or the root's position when no levels are rendered."""
+        """Position (1-based, less `_start_base`) of the node tree t reaches after its top
+        levels: a nested CASE, or the root's position when no levels are rendered."""
+        base = self._start_base(ctx, t)
         if self.top_levels == 0:
-            return "1"
+            return str(1 - base)
         tree = ctx.forest.trees[t]
         _, position, depth = self._layout(ctx.forest, t)
         top = np.flatnonzero((depth < self.top_levels) & (tree.left != LEAF))
         return nested_case(tree, split_conditions(ctx, tree, ctx.bounds[t], top),
-                           lambda node: str(int(position[node]) + 1), levels=self.top_levels)
+                           lambda node: str(int(position[node]) + 1 - base),
+                           levels=self.top_levels)
+
+    def _start_base(self, ctx: Context, t: int) -> int:
+        """What tree t's node column holds less than the position, before the walk."""
+        return 0
+
+    def _leaf_base(self, ctx: Context, t: int) -> int:
+        """What tree t's node column holds less than the position, after the walk."""
+        return 0
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _, _ = self._layout(ctx.forest, tree_index)
         tree = ctx.forest.trees[tree_index]
         n = self._name(ctx, "n", tree_index)
+        base = self._leaf_base(ctx, tree_index)
+        n = f"{n} + {base}" if base else n
         leaf_mask = tree.left[order] == LEAF
         if isinstance(leaf_value, LeafLiterals) and leaf_value.plain:
             # The literals would read back as exactly these numbers: write them directly.
             numbers = np.where(leaf_mask, leaf_value.values[order], 0.0)
             if np.isfinite(numbers).all():
-                return self._index(ctx, self._array(ctx, numbers, ctx.profile.double_type), n)
+                return self._index(ctx, self._array(ctx, numbers, ctx.profile.array_double_type), n)
         items = [leaf_value(node) if leaf else "0"
                  for node, leaf in zip(order.tolist(), leaf_mask.tolist(), strict=True)]
         try:
@@ -288,7 +304,7 @@ class TextArrays(Strategy):
                 items=", ".join(items)), n)
         if not all(map(math.isfinite, values)):
             raise UserError("a leaf value is not finite", "check the model's leaf values")
-        return self._index(ctx, self._array(ctx, np.array(values), ctx.profile.double_type),
+        return self._index(ctx, self._array(ctx, np.array(values), ctx.profile.array_double_type),
                            n)
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
