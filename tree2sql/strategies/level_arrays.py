@@ -12,7 +12,9 @@ level's arrays are read at the column itself and its right children are stored l
 
     r = CASE WHEN r <= 0 THEN r - (T - S) ELSE right[r] - (xs[slot[r]] <= bound[r]) END
 
-A left child sits just before its right sibling; each array is read once. A row whose tree
+A left child sits just before its right sibling; each array is read once. On a tree's last
+level the step gives positions (right children stored as they are, finished rows `r + S`),
+which the leaf values are read at. A row whose tree
 reached a leaf on an earlier level keeps its node (r <= 0, moved to the next level's base);
 a tree with no leaf above this level has no such row, so its step is the ELSE branch alone.
 A leaf on this level is its own right child with the undecided slot, so it keeps its node
@@ -94,18 +96,20 @@ class LevelArrays(TextArrays):
 
     def _node_columns(self, ctx: Context, t: int) -> dict[str, np.ndarray]:
         """text_arrays' arrays in breadth-first order, each right child less the nodes
-        above its level (what the walk's column holds once it is there)."""
+        above its level (what the walk's column holds once it is there), except on the
+        tree's last level walked: the walk ends at positions, which the leaf values use."""
         columns = super()._node_columns(ctx, t)
         order, _, depth = self._layout(ctx.forest, t)
-        columns["right"] = columns["right"] - self._starts(ctx.forest, t)[depth[order] + 1]
+        below = depth[order] + 1
+        base = np.where(below < self._depths(ctx.forest)[t], self._starts(ctx.forest, t)[below], 0)
+        columns["right"] = columns["right"] - base
         return columns
 
     def _start_base(self, ctx: Context, t: int) -> int:
-        depth = self._depths(ctx.forest)[t]
-        return int(self._starts(ctx.forest, t)[min(self.top_levels, depth)])
-
-    def _leaf_base(self, ctx: Context, t: int) -> int:
-        return int(self._starts(ctx.forest, t)[self._depths(ctx.forest)[t]])
+        """Nodes above the first level walked; 0 for a tree the walk never steps."""
+        if self._depths(ctx.forest)[t] <= self.top_levels:
+            return 0
+        return int(self._starts(ctx.forest, t)[self.top_levels])
 
     def _walk_stage(self, ctx: Context, level: int, keep: list[str], source: str) -> str:
         p = ctx.profile
@@ -127,7 +131,8 @@ class LevelArrays(TextArrays):
             bound, right = (self._index(ctx, read[what], n) for what in ("bound", "right"))
             step = f"{right} - {p.indicator(f'{value} <= {bound}')}"
             if self._shallowest_leaf(ctx.forest, t) < tree_level:  # some rows are done
-                step = f"CASE WHEN {n} <= 0 THEN {n} - {end - above} ELSE {step} END"
+                done = f"{n} + {above}" if tree_level == depth - 1 else f"{n} - {end - above}"
+                step = f"CASE WHEN {n} <= 0 THEN {done} ELSE {step} END"
             steps.append(f"{step} AS {n}")
         named = "WITH " + ",\n".join(constants) + "\n" if constants else ""
         return named + "SELECT " + ",\n  ".join([*keep, *steps]) + f"\nFROM {source}"

@@ -276,19 +276,15 @@ class TextArrays(Strategy):
                            levels=self.top_levels)
 
     def _start_base(self, ctx: Context, t: int) -> int:
-        """What tree t's node column holds less than the position, before the walk."""
+        """What tree t's node column holds less than the position, before the walk (the
+        walk ends at positions)."""
         return 0
 
-    def _leaf_base(self, ctx: Context, t: int) -> int:
-        """What tree t's node column holds less than the position, after the walk."""
-        return 0
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _, _ = self._layout(ctx.forest, tree_index)
         tree = ctx.forest.trees[tree_index]
         n = self._name(ctx, "n", tree_index)
-        base = self._leaf_base(ctx, tree_index)
-        n = f"{n} + {base}" if base else n
         leaf_mask = tree.left[order] == LEAF
         if isinstance(leaf_value, LeafLiterals) and leaf_value.plain:
             # The literals would read back as exactly these numbers: write them directly.
