@@ -57,8 +57,8 @@ class CaseLeaves(Strategy):
         return np.where(is_leaf, np.cumsum(is_leaf), 0)
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
-        return [(ctx.prefix("leaves"), self.walk_stage(ctx, [*ctx.keys, ctx.ok],
-                                                       self.walks(ctx)))]
+        return [(ctx.prefix("leaves"),
+                 "".join(self.walk_stage(ctx, [*ctx.keys, ctx.ok], self.walks(ctx))))]
 
     def walks(self, ctx: Context) -> list[str]:
         """Each tree's walk as a select item `CASE ... END AS leaf_t`, in tree order."""
@@ -70,11 +70,15 @@ class CaseLeaves(Strategy):
                 for t, case in zip(trees, cases.render_roots(trees, numbers), strict=True)]
 
     @staticmethod
-    def walk_stage(ctx: Context, columns: list[str], walks: list[str]) -> str:
-        """A fenced SELECT of `columns` and `walks` over the source."""
+    def walk_stage(ctx: Context, columns: list[str], walks: list[str]) -> list[str]:
+        """The pieces of a fenced SELECT of `columns` and `walks` over the source, for the
+        caller to join once (the walks are megabytes; each copy costs fresh memory)."""
         fence = ctx.profile.raw.get("leaf_stage_fence", "")
-        return ("SELECT " + ",\n  ".join([*columns, *walks])
-                + f"\nFROM {ctx.source}" + (f"\n{fence}" if fence else ""))
+        parts = ["SELECT "]
+        for item in [*columns, *walks]:
+            parts += [item, ",\n  "]
+        parts[-1] = f"\nFROM {ctx.source}" + (f"\n{fence}" if fence else "")
+        return parts
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         p = ctx.profile

@@ -54,15 +54,14 @@ class ScanGroups(CaseLeaves):
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         require_keys(ctx.profile, ("row_identity", "cte_inlined"), self.name)
         walks, q = self.walks(ctx), ctx.profile.quote
-        scans = []
+        using = f" USING ({', '.join(ctx.identity)})"
+        parts = ["SELECT *\nFROM "]
         for g, trees in enumerate(scan_groups(len(walks))):
             carried = [*ctx.identity, *([*ctx.keys, ctx.ok] if g == 0 else [])]
-            body = self.walk_stage(ctx, carried, walks[trees.start:trees.stop])
-            scans.append(f"(\n{body}\n) AS {q(f'__t2s_scan{g}')}")
-        using = f" USING ({', '.join(ctx.identity)})"
-        return [(ctx.prefix("leaves"),
-                 "SELECT *\nFROM " + scans[0]
-                 + "".join(f"\nJOIN {scan}{using}" for scan in scans[1:]))]
+            parts += ["\nJOIN (\n" if g else "(\n",
+                      *self.walk_stage(ctx, carried, walks[trees.start:trees.stop]),
+                      f"\n) AS {q(f'__t2s_scan{g}')}", using if g else ""]
+        return [(ctx.prefix("leaves"), "".join(parts))]
 
     def inlined_stages(self, ctx: Context) -> set[str]:
         return {ctx.source}
