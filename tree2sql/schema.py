@@ -75,19 +75,16 @@ def _check_keys(engine: Engine, table: str, keys: Sequence[str]) -> None:
                         "name key columns that are unique and never NULL (--key may repeat)")
 
 
-
-
-def with_row_identity(engine: Engine, request: ScoringRequest,
-                      table: str | None = None) -> ScoringRequest:
-    """`request`, marked `row_identity` when `table` (default: its own) is a stored table
-    with the dialect's physical row identity (profile `row_identity_check`), so that the
-    planner may take shapes that join on it (tree2sql.strategies.scan_groups)."""
+def with_row_identity(engine: Engine, request: ScoringRequest) -> ScoringRequest:
+    """`request`, marked `row_identity` when its table is a stored table with the
+    dialect's physical row identity (profile `row_identity_check`), so that the planner
+    may take shapes that join on it (tree2sql.strategies.scan_groups)."""
     from tree2sql.dialects import load_profile
 
     p = load_profile(engine.dialect)
     check = p.raw.get("row_identity_check")
     if not check:
         return request
-    name = p.string(p.qualified(table or request.table))
+    name = p.string(p.qualified(request.table))
     found = engine.query(check.format(name=name))
     return replace(request, row_identity=bool(len(next(iter(found.values()), []))))

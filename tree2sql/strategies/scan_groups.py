@@ -8,8 +8,8 @@ with 20 trees. Walking 20 trees over all rows, then the next 20, keeps one group
 program in cache; each group's fenced scan runs in the parallel workers, and the joins
 cost less than the cache misses they save:
 
-    SELECT * FROM (SELECT id..., keys, ok, leaf_0 ... leaf_19 FROM checked OFFSET 0) g0
-    JOIN (SELECT id..., leaf_20 ... leaf_39 FROM checked OFFSET 0) g1 USING (id...) ...
+    SELECT * FROM (SELECT row..., keys, ok, leaf_0 ... leaf_19 FROM checked OFFSET 0) g0
+    JOIN (SELECT row..., leaf_20 ... leaf_39 FROM checked OFFSET 0) g1 USING (row...) ...
 
 The join needs a key that is unique and never NULL in every row the statement reads,
 whatever the user's keys are: the profile's `row_identity` (PostgreSQL: `tableoid, ctid`,
@@ -35,7 +35,7 @@ from tree2sql.forest import Forest
 from tree2sql.strategies.base import Context, Needs, require_keys
 from tree2sql.strategies.case_leaves import REQUIRED_KEYS, CaseLeaves
 
-TREES_PER_SCAN = 20  # measured best of 10, 20, 25 and 34 (benchmarks/README.md)
+TREES_PER_SCAN = 20  # 10, 15, 25 and 34 measured within run-to-run spread of it
 
 
 def scan_groups(n_trees: int) -> list[range]:
