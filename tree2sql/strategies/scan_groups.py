@@ -36,6 +36,7 @@ from tree2sql.strategies.base import Context, Needs, require_keys
 from tree2sql.strategies.case_leaves import REQUIRED_KEYS, CaseLeaves
 
 TREES_PER_SCAN = 20  # 10, 15, 25 and 34 measured within run-to-run spread of it
+SCAN_KEYS = (*REQUIRED_KEYS, "row_identity", "cte_inlined")
 
 
 def scan_groups(n_trees: int) -> list[range]:
@@ -52,7 +53,7 @@ class ScanGroups(CaseLeaves):
     reads_row_identity = True
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
-        require_keys(ctx.profile, ("row_identity", "cte_inlined"), self.name)
+        require_keys(ctx.profile, SCAN_KEYS, self.name)
         walks, q = self.walks(ctx), ctx.profile.quote
         using = f" USING ({', '.join(ctx.identity)})"
         parts = ["SELECT *\nFROM "]
@@ -67,7 +68,7 @@ class ScanGroups(CaseLeaves):
         return {ctx.source}
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
-        require_keys(profile, (*REQUIRED_KEYS, "row_identity", "cte_inlined"), self.name)
+        require_keys(profile, SCAN_KEYS, self.name)
         needs = super().needs(forest, profile)
         if len(forest.trees) <= TREES_PER_SCAN:
             return Needs(needs.statement_bytes, unsuitable=(

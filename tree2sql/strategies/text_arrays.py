@@ -280,7 +280,6 @@ class TextArrays(Strategy):
         walk ends at positions)."""
         return 0
 
-
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _, _ = self._layout(ctx.forest, tree_index)
         tree = ctx.forest.trees[tree_index]
