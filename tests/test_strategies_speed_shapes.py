@@ -7,6 +7,8 @@ IEEE 754 doubles as numpy implements them (float32 boundary rows, NaN, infinitie
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from engine_rows import Case, assert_bar, cases, open_engine, score
@@ -16,6 +18,7 @@ from sklearn.ensemble import (
     GradientBoostingClassifier,
     HistGradientBoostingClassifier,
     RandomForestClassifier,
+    RandomForestRegressor,
 )
 
 from tree2sql.compiler import ScoringRequest, compile_forest
@@ -142,7 +145,7 @@ def clickhouse():
     engine.close()
 
 
-CLICKHOUSE_SHAPES = ("text_arrays", "level_arrays")
+CLICKHOUSE_SHAPES = ("text_arrays", "level_arrays", "forest_levels")
 
 
 @pytest.mark.parametrize("shape", CLICKHOUSE_SHAPES)
@@ -194,7 +197,8 @@ def test_level_arrays_test_for_finished_rows_only_below_a_leaf() -> None:
     (benchmarks/README.md, ClickHouse shapes). Nothing in the walk is Nullable. Breast
     cancer Wisconsin: Street, Wolberg & Mangasarian (1993), UCI."""
     forest = cases()["breast_cancer_missing"].forest
-    sql = compile_forest(forest, ScoringRequest("t", ("k",)), "clickhouse").sql
+    sql = compile_forest(forest, ScoringRequest("t", ("k",), strategy="level_arrays"),
+                         "clickhouse").sql
     shallowest = [int(tree.node_depths()[tree.is_leaf()].min()) for tree in forest.trees]
     tested = sum(max(0, tree.depth() - 1 - low)
                  for tree, low in zip(forest.trees, shallowest, strict=True))
@@ -218,6 +222,69 @@ def test_clickhouse_takes_level_arrays_past_the_parse_tree_limit() -> None:
     assert compiled.sql.count('AS "__t2s_slot0"') == forest.trees[0].depth()
     assert "CROSS JOIN" not in compiled.sql
     assert "SET max_query_size = 1073741824" in compiled.setup
+
+
+def test_clickhouse_steps_every_tree_at_once_where_leaves_sit_low() -> None:
+    """forest_levels writes one array map per level, whatever the number of trees, and no
+    per-tree step; a forest whose leaves lie far above its deepest level (fully grown
+    trees) goes to level_arrays, with the reason said. Breast cancer Wisconsin: Street,
+    Wolberg & Mangasarian (1993), UCI."""
+    X, y = load_breast_cancer(return_X_y=True)
+    profile = load_profile("clickhouse")
+    limited = ingest(RandomForestClassifier(n_estimators=30, max_depth=4, random_state=0)
+                     .fit(X, y))
+    strategy, _ = choose(limited, profile)
+    assert strategy.name == "forest_levels"
+    sql = compile_forest(limited, ScoringRequest("t", ("k",)), "clickhouse").sql
+    assert sql.count("arrayMap(") == 4 == max(tree.depth() for tree in limited.trees)
+    assert sql.count('"__t2s_xs"[') == 4 and " <= 0 THEN " not in sql
+    grown = ingest(RandomForestClassifier(n_estimators=30, random_state=0).fit(X, y))
+    strategy, reason = choose(grown, profile)
+    assert strategy.name == "level_arrays" and "far above its deepest level" in reason
+
+
+def test_forest_levels_agree_on_lone_leaves_and_uneven_trees(clickhouse) -> None:
+    """Trees that are one leaf (a constant target) walk no level; trees of uneven depth
+    carry their shallow leaves down to the deepest level. Iris: R. A. Fisher (1936),
+    Annals of Eugenics 7(2); UCI ML repository."""
+    X, y = load_iris(return_X_y=True)
+    for name, model in (
+            ("lone", RandomForestRegressor(n_estimators=3, random_state=0)
+             .fit(X, np.full(len(X), 2.5))),
+            ("uneven", RandomForestClassifier(n_estimators=6, max_depth=5, random_state=0)
+             .fit(X, y))):
+        forest = ingest(model)
+        depths = [tree.depth() for tree in forest.trees]
+        assert (max(depths) == 0) if name == "lone" else (min(depths) < max(depths))
+        case = Case(f"levels_{name}", model, forest, X, np.zeros(X.shape, dtype=bool))
+        report = score(clickhouse, case, "forest_levels")
+        assert report.strategy == "forest_levels"
+        assert report.rows == len(X) and report.disagreements == 0, report.to_text()
+        assert report.max_abs_diff <= 1e-12, report.to_text()
+
+
+def test_forest_levels_write_arrays_where_read_without_named_constants() -> None:
+    """A profile with an array map but no named constants gets each level's arrays written
+    where the step reads them (once each). DuckDB's `list_transform` with a lambda (DuckDB
+    docs, "Lambda Functions"); its profile leaves the key out, since the shape was measured
+    slower there (benchmarks/README.md). Breast cancer Wisconsin: Street, Wolberg &
+    Mangasarian (1993), UCI; rows with NaN, NULL, float32 boundary and refused values."""
+    profile = load_profile("duckdb")
+    assert "array_map" not in profile.raw and "constant_alias" not in profile.raw
+    profile = replace(profile, raw={**profile.raw,
+                                    "array_map": "list_transform({array}, lambda {name}: {body})"})
+    case = cases()["breast_cancer_missing"]
+    engine = open_engine("duckdb")
+    try:
+        report = score(engine, case, "forest_levels", profile)
+    finally:
+        engine.close()
+    assert report.strategy == "forest_levels"
+    assert_bar(report, case)
+    sql = compile_forest(case.forest, ScoringRequest("t", ("k",), strategy="forest_levels"),
+                         profile).sql
+    depth = max(tree.depth() for tree in case.forest.trees)
+    assert sql.count("list_transform(") == depth and " AS \"__t2s_slot0\"" not in sql
 
 
 @pytest.mark.parametrize("strategy", ["node_arrays", "text_arrays"])

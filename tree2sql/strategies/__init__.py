@@ -17,6 +17,7 @@ from tree2sql.strategies.base import Context, Needs, Strategy
 from tree2sql.strategies.case_leaves import CaseLeaves
 from tree2sql.strategies.declared_arrays import DeclaredArrays
 from tree2sql.strategies.depth_staged import DepthStaged
+from tree2sql.strategies.forest_levels import ForestLevels
 from tree2sql.strategies.leaf_counts import LeafCounts
 from tree2sql.strategies.level_arrays import LevelArrays
 from tree2sql.strategies.model_table import ModelTable
@@ -28,7 +29,7 @@ from tree2sql.strategies.text_arrays import TextArrays
 STRATEGIES: dict[str, type[Strategy]] = {
     cls.name: cls for cls in (NestedCase, NodeArrays, DepthStaged, ModelTable, TextArrays,
                               CaseLeaves, LevelArrays, LeafCounts, DeclaredArrays,
-                              ScanGroups)}
+                              ScanGroups, ForestLevels)}
 AST_ELEMENTS_PER_BYTE = 1 / 6  # rough parse-tree nodes per statement byte (estimate)
 NO_ROW_IDENTITY = ("it joins on each row's physical identity, and the source is not known to "
                    "be a stored table (verify and deploy check it; a view has none)")

@@ -282,25 +282,28 @@ class TextArrays(Strategy):
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         order, _, _ = self._layout(ctx.forest, tree_index)
-        tree = ctx.forest.trees[tree_index]
-        n = self._name(ctx, "n", tree_index)
-        leaf_mask = tree.left[order] == LEAF
+        leaf_mask = ctx.forest.trees[tree_index].left[order] == LEAF
+        return self._index(ctx, self._leaf_array(ctx, order, leaf_mask, leaf_value),
+                           self._name(ctx, "n", tree_index))
+
+    def _leaf_array(self, ctx: Context, nodes: np.ndarray, leaf_mask: np.ndarray,
+                    leaf_value: LeafValue) -> str:
+        """Constant array of `leaf_value` at `nodes` (0 where `leaf_mask` is false): numbers
+        from text where they are plain, else the literals themselves."""
         if isinstance(leaf_value, LeafLiterals) and leaf_value.plain:
             # The literals would read back as exactly these numbers: write them directly.
-            numbers = np.where(leaf_mask, leaf_value.values[order], 0.0)
+            numbers = np.where(leaf_mask, leaf_value.values[nodes], 0.0)
             if np.isfinite(numbers).all():
-                return self._index(ctx, self._array(ctx, numbers, ctx.profile.array_double_type), n)
+                return self._array(ctx, numbers, ctx.profile.array_double_type)
         items = [leaf_value(node) if leaf else "0"
-                 for node, leaf in zip(order.tolist(), leaf_mask.tolist(), strict=True)]
+                 for node, leaf in zip(nodes.tolist(), leaf_mask.tolist(), strict=True)]
         try:
             values = [float(item) for item in items]
         except ValueError:  # not plain numbers: keep the literals as SQL
-            return self._index(ctx, ctx.profile.raw["array_literal"].format(
-                items=", ".join(items)), n)
+            return ctx.profile.raw["array_literal"].format(items=", ".join(items))
         if not all(map(math.isfinite, values)):
             raise UserError("a leaf value is not finite", "check the model's leaf values")
-        return self._index(ctx, self._array(ctx, np.array(values), ctx.profile.array_double_type),
-                           n)
+        return self._array(ctx, np.array(values), ctx.profile.array_double_type)
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         self._check(profile)
