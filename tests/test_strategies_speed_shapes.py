@@ -209,38 +209,49 @@ def test_level_arrays_test_for_finished_rows_only_below_a_leaf() -> None:
     assert "Array(Nullable" not in sql
 
 
-def test_clickhouse_takes_level_arrays_past_the_parse_tree_limit() -> None:
+def test_clickhouse_takes_named_level_arrays_past_the_parse_tree_limit() -> None:
     """A forest whose nested CASE would pass ClickHouse's default max_ast_elements (50000,
     ClickHouse docs, Settings) gets its node arrays as named constants: one literal per
-    tree and level, named in the stage that walks that level, nothing cross-joined or
-    carried."""
+    level for the whole forest, named in the stage that walks that level, nothing
+    cross-joined or carried."""
     X, y = load_breast_cancer(return_X_y=True)
     forest = ingest(RandomForestClassifier(n_estimators=150, random_state=0).fit(X, y))
     strategy, _ = choose(forest, load_profile("clickhouse"))
-    assert strategy.name == "level_arrays"
+    assert strategy.name == "forest_levels"
     compiled = compile_forest(forest, ScoringRequest("t", ("k",)), "clickhouse")
-    assert compiled.sql.count('AS "__t2s_slot0"') == forest.trees[0].depth()
+    depth = max(tree.depth() for tree in forest.trees)
+    assert compiled.sql.count(' AS "__t2s_slot') == depth
+    assert compiled.sql.count('AS "__t2s_slot0"') == 1
     assert "CROSS JOIN" not in compiled.sql
     assert "SET max_query_size = 1073741824" in compiled.setup
 
 
-def test_clickhouse_steps_every_tree_at_once_where_leaves_sit_low() -> None:
+def test_clickhouse_steps_every_tree_at_once(clickhouse) -> None:
     """forest_levels writes one array map per level, whatever the number of trees, and no
-    per-tree step; a forest whose leaves lie far above its deepest level (fully grown
-    trees) goes to level_arrays, with the reason said. Breast cancer Wisconsin: Street,
+    per-tree step. Leaves of a depth-limited forest are carried down to its last level, so
+    no step tests for finished rows; a fully grown forest, whose leaves lie far above its
+    deepest level, sends a row at a leaf to minus the leaf's number and tests for it below
+    the shallowest leaf. Both agree with scikit-learn. Breast cancer Wisconsin: Street,
     Wolberg & Mangasarian (1993), UCI."""
     X, y = load_breast_cancer(return_X_y=True)
     profile = load_profile("clickhouse")
-    limited = ingest(RandomForestClassifier(n_estimators=30, max_depth=4, random_state=0)
-                     .fit(X, y))
-    strategy, _ = choose(limited, profile)
-    assert strategy.name == "forest_levels"
-    sql = compile_forest(limited, ScoringRequest("t", ("k",)), "clickhouse").sql
-    assert sql.count("arrayMap(") == 4 == max(tree.depth() for tree in limited.trees)
-    assert sql.count('"__t2s_xs"[') == 4 and " <= 0 THEN " not in sql
-    grown = ingest(RandomForestClassifier(n_estimators=30, random_state=0).fit(X, y))
-    strategy, reason = choose(grown, profile)
-    assert strategy.name == "level_arrays" and "far above its deepest level" in reason
+    for name, model in (
+            ("limited", RandomForestClassifier(n_estimators=30, max_depth=4, random_state=0)),
+            ("grown", RandomForestClassifier(n_estimators=30, random_state=0))):
+        forest = ingest(model.fit(X, y))
+        assert choose(forest, profile)[0].name == "forest_levels"
+        sql = compile_forest(forest, ScoringRequest("t", ("k",)), "clickhouse").sql
+        depth = max(tree.depth() for tree in forest.trees)
+        shallowest = min(int(tree.node_depths()[tree.is_leaf()].min()) for tree in forest.trees)
+        tested = 0 if name == "limited" else depth - 1 - shallowest
+        assert sql.count("arrayMap(") == depth and sql.count('"__t2s_xs"[') == depth
+        assert sql.count('CASE WHEN "__t2s_g" < 0 THEN') == tested
+        assert (tested > 0) == (name == "grown")
+        case = Case(f"levels_{name}", model, forest, X, np.zeros(X.shape, dtype=bool))
+        report = score(clickhouse, case, None)
+        assert report.strategy == "forest_levels"
+        assert report.rows == len(X) and report.disagreements == 0, report.to_text()
+        assert report.max_abs_diff <= 1e-12, report.to_text()
 
 
 def test_forest_levels_agree_on_lone_leaves_and_uneven_trees(clickhouse) -> None:
