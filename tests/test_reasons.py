@@ -20,7 +20,7 @@ import pytest
 import skops.io
 import sqlglot
 from click.testing import CliRunner
-from engine_rows import KEY, Case, cases, edge_rows, load_rows
+from engine_rows import KEY, Case, cases, edge_rows, load_rows, open_engine
 from sklearn import datasets
 from sklearn.ensemble import (
     ExtraTreesRegressor,
@@ -188,6 +188,26 @@ def test_contributions_add_up_and_match_the_library(engines, dialect, name):
         expected = sorted(used, key=lambda i: (-abs(ref[i]), i))
         for k, (mine, theirs) in enumerate(zip(index, expected, strict=True)):
             assert mine == theirs or abs(abs(ref[mine]) - abs(ref[theirs])) <= tol, (row, k)
+
+
+def test_top_three_on_clickhouse_forest_levels():
+    """ClickHouse's default shape (every tree stepped at once, forest_levels) finds the leaf
+    ids the credits are looked up by: top three reasons against this module's reference.
+    Breast cancer Wisconsin: Street, Wolberg & Mangasarian (1993), UCI."""
+    case = cases()["breast_cancer_missing"]
+    engine = open_engine("clickhouse")
+    try:
+        scored, compiled = run(engine, case, 3)
+    finally:
+        engine.close()
+    assert compiled.strategy == "forest_levels"
+    names, values = reason_table(scored, compiled)
+    keep, credits, _ = case_reference(case.name)
+    feature_names = list(case.forest.feature_names)
+    for row, ref in zip(keep.tolist(), credits, strict=True):
+        order = sorted(range(len(ref)), key=lambda i: (-abs(ref[i]), i))[:3]
+        assert names[row].tolist() == [feature_names[i] for i in order], row
+        assert np.abs(values[row] - ref[order]).max() <= TOLERANCE
 
 
 @pytest.mark.parametrize("strategy", ["nested_case", "node_arrays", "depth_staged",
