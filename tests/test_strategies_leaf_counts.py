@@ -12,8 +12,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from engine_rows import KEY, assert_bar, cases, load_rows, open_engine, score
-from sklearn.datasets import load_breast_cancer, load_wine
+from engine_rows import KEY, Case, assert_bar, cases, load_rows, open_engine, score
+from sklearn.datasets import load_breast_cancer, load_iris, load_wine
 from sklearn.ensemble import HistGradientBoostingClassifier, RandomForestClassifier
 from sklearn.tree import DecisionTreeClassifier
 
@@ -23,7 +23,7 @@ from tree2sql.errors import UserError
 from tree2sql.forest import LEAF
 from tree2sql.ingest import ingest
 from tree2sql.strategies import choose
-from tree2sql.strategies.leaf_counts import leaf_counts
+from tree2sql.strategies.leaf_counts import leaf_counts, zero_on_top
 from tree2sql.verify import verify
 
 CLASSIFIERS = ("iris", "wine", "breast_cancer_missing")
@@ -75,6 +75,27 @@ def test_codes_are_the_library_counts() -> None:
         assert np.array_equal(counts[0], samples)  # slot 0 holds N
         for k in (1, 2):
             assert np.array_equal(counts[k] / samples, estimator.tree_.value[leaf, 0, k])
+        assert zero_on_top(bits, 3)  # class 0's count above the others, for a shift alone
+        assert np.array_equal((code[leaf] >> (bits * 3)) / samples,
+                              estimator.tree_.value[leaf, 0, 0])
+
+
+def test_class_zero_below_the_top_where_its_count_does_not_fit(sqlite) -> None:
+    """Leaves of 2^16 samples and more leave no room for class 0's count above three
+    classes' fields (16 bits x 4 > 62): class 0 is then N minus the others, and still agrees
+    with scikit-learn. Iris (Fisher 1936) repeated 500 times, so that a stump's leaves hold
+    tens of thousands of samples; scored on the 150 original rows."""
+    X, y = load_iris(return_X_y=True)
+    model = RandomForestClassifier(n_estimators=2, max_depth=1, random_state=0)
+    model.fit(np.tile(X, (500, 1)), np.tile(y, 500))
+    forest = ingest(model)
+    codes, bits = leaf_counts(forest)
+    assert bits == 16 and not zero_on_top(bits, 3)
+    case = Case("iris_repeated", model, forest, X, np.zeros(X.shape, dtype=bool))
+    report = score(sqlite, case, "leaf_counts")
+    assert report.strategy == "leaf_counts"
+    assert report.rows == len(X) and report.disagreements == 0, report.to_text()
+    assert report.max_abs_diff == 0.0, report.to_text()
 
 
 def test_models_without_counts_take_another_shape() -> None:

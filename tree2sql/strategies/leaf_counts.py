@@ -7,12 +7,14 @@ twice. A random forest's leaf holds exactly c_k / N for each class k: integer (b
 counts over the samples that reached it, one IEEE division made by the library. So one walk
 can end in the integer
 
-    code = N + c_1 * 2^b + c_2 * 2^(2b) + ...     (b bits per count)
+    code = N + c_1 * 2^b + c_2 * 2^(2b) + ... + c_0 * 2^(Kb)     (b bits per count)
 
-and class k's value is `CAST((code >> kb) & m AS REAL) / (code & m)` (class 0: N minus the
-others), the same correctly rounded division. The codes of each group of trees are computed
-in a fenced stage and summed in the next (Strategy.group_columns), and not carried further:
-storing them all in one stage cost more than the second walk saved.
+and class k's value is `CAST((code >> kb) & m AS REAL) / (code & m)`, class 0's
+`CAST(code >> Kb AS REAL) / (code & m)`, the same correctly rounded division. Where class
+0's count does not fit as well, its value is N minus the others over N. The codes of each
+group of trees are computed in a fenced stage and summed in the next
+(Strategy.group_columns), and not carried further: storing them all in one stage cost
+more than the second walk saved.
 
 Profile key: `integer_bits = true` where the engine has the integer operators `>>` and `&`
 (SQLite, DuckDB). Suits a forest whose every leaf passes that check exactly (the compiler
@@ -60,10 +62,18 @@ def leaf_counts(forest: Forest) -> tuple[list[np.ndarray], int] | str:
         code = samples.copy()
         for k in range(1, classes):
             code += counts[:, k] << (bits * k)
+        if zero_on_top(bits, classes):
+            code += counts[:, 0] << (bits * classes)
         packed = np.zeros(len(leaf), dtype=np.int64)
         packed[leaf] = code
         codes.append(packed)
     return codes, bits
+
+
+def zero_on_top(bits: int, classes: int) -> bool:
+    """Whether class 0's count also fits, above the others: its decode is then one shift,
+    where N minus the other counts takes a mask, a shift and a subtraction per class."""
+    return bits * (classes + 1) <= PACKED_BITS
 
 
 class LeafCounts(NestedCase):
@@ -109,7 +119,12 @@ class LeafCounts(NestedCase):
         code, mask = self._code(ctx, tree_index), (1 << bits) - 1
         samples = f"({code} & {mask})"
         count = [f"(({code} >> {bits * j}) & {mask})" for j in range(1, value.shape[1])]
-        numerator = count[k - 1] if k else " - ".join([samples, *count])
+        if k:
+            numerator = count[k - 1]
+        elif zero_on_top(bits, value.shape[1]):
+            numerator = f"({code} >> {bits * value.shape[1]})"
+        else:
+            numerator = " - ".join([samples, *count])
         return f"CAST({numerator} AS {ctx.profile.double_type}) / {samples}"
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
