@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 import sqlglot
 from engine_rows import KEY, load_rows
+from sklearn.datasets import load_breast_cancer
 from sklearn.ensemble import RandomForestClassifier
 from sklearn.tree import DecisionTreeRegressor
 from test_dialects_golden import case_nesting
@@ -163,6 +164,19 @@ def test_estimates_bound_the_real_statement():
                        .sql.encode())
             estimate = strategy.needs(forest, profile).statement_bytes
             assert real <= estimate <= 4 * real, (dialect, name, real, estimate)
+    # forest_levels, leaves carried down or finished rows kept. Breast cancer Wisconsin:
+    # Street, Wolberg & Mangasarian (1993), UCI.
+    X, y = load_breast_cancer(return_X_y=True)
+    for depth in (4, None):
+        forest = ingest(RandomForestClassifier(n_estimators=30, max_depth=depth,
+                                               random_state=0).fit(X, y))
+        profile = load_profile("clickhouse")
+        strategy, _ = choose(forest, profile, "forest_levels")
+        real = len(compile_forest(forest, ScoringRequest(table="t", keys=("k",),
+                                                         strategy="forest_levels"),
+                                  "clickhouse").sql.encode())
+        estimate = strategy.needs(forest, profile).statement_bytes
+        assert real <= estimate <= 4 * real, ("clickhouse", depth, real, estimate)
 
 
 def test_clickhouse_passes_over_array_shapes_when_planning_would_parse_too_much():

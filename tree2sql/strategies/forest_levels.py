@@ -154,16 +154,19 @@ class ForestLevels(TextArrays):
         return []  # each stage names its own level's arrays
 
     @staticmethod
-    def _carries(forest: Forest, depth: int) -> bool:
-        """Whether leaves are carried down to the last level (see ENTRIES_PER_NODE)."""
-        entries = sum(walk_entries(tree, depth) for tree in forest.trees)
-        return entries <= ENTRIES_PER_NODE * forest.n_nodes
+    def _entries(forest: Forest, depth: int) -> tuple[bool, int]:
+        """Whether leaves are carried down to the last level (see ENTRIES_PER_NODE), and
+        about how many nodes the walk then passes (without carrying, at most every node)."""
+        carried = sum(walk_entries(tree, depth) for tree in forest.trees)
+        if carried <= ENTRIES_PER_NODE * forest.n_nodes:
+            return True, carried
+        return False, forest.n_nodes
 
     def _forest_walk(self, ctx: Context) -> Walk:
         """The forest's walk, made once (every stage and every term reads it)."""
         if self._walk is None:
             forest, depth = ctx.forest, self.depth(ctx.forest)
-            carry = self._carries(forest, depth)
+            carry, _ = self._entries(forest, depth)
             levels, leaves = forest_layout(forest, depth, len(ctx.features), ctx.bounds, carry)
             shallowest = min(int(tree.node_depths()[tree.left == LEAF].min())
                              for tree in forest.trees)
@@ -212,12 +215,14 @@ class ForestLevels(TextArrays):
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         self._check(profile)
         depth = self.depth(forest)
-        entries = min(sum(walk_entries(tree, depth) for tree in forest.trees),
-                      int(ENTRIES_PER_NODE * forest.n_nodes))
+        _, entries = self._entries(forest, depth)
         leaves = sum(int((tree.left == LEAF).sum()) for tree in forest.trees)
         outputs = max(1, forest.n_outputs)
-        size = 45 * (3 * entries + outputs * leaves) + 200 * depth \
-            + 120 * len(forest.trees) * outputs
+        # Bytes per array element: a slot, a right child and a bound (up to 24 characters)
+        # per node walked, a double per leaf and output; then each level's map and each
+        # tree's term.
+        size = 36 * entries + 26 * outputs * leaves + 600 * depth \
+            + 150 * len(forest.trees) * outputs + 300 * forest.n_features + 2000
         elements = 40 * forest.n_features + 40 * depth + 12 * len(forest.trees) * outputs
         return Needs(size, case_depth=1, expression_depth=12,
                      select_columns=forest.n_features + 4, ast_elements=elements,
