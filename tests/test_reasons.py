@@ -190,6 +190,17 @@ def test_contributions_add_up_and_match_the_library(engines, dialect, name):
             assert mine == theirs or abs(abs(ref[mine]) - abs(ref[theirs])) <= tol, (row, k)
 
 
+def assert_top_three(scored: ScoredRows, compiled, case: Case) -> None:
+    """The three largest credits of each row, by name and value, as the reference has them."""
+    names, values = reason_table(scored, compiled)
+    keep, credits, _ = case_reference(case.name)
+    feature_names = list(case.forest.feature_names)
+    for row, ref in zip(keep.tolist(), credits, strict=True):
+        order = sorted(range(len(ref)), key=lambda i: (-abs(ref[i]), i))[:3]
+        assert names[row].tolist() == [feature_names[i] for i in order], row
+        assert np.abs(values[row] - ref[order]).max() <= TOLERANCE
+
+
 def test_top_three_on_clickhouse_forest_levels():
     """ClickHouse's default shape (every tree stepped at once, forest_levels) finds the leaf
     ids the credits are looked up by: top three reasons against this module's reference.
@@ -201,13 +212,7 @@ def test_top_three_on_clickhouse_forest_levels():
     finally:
         engine.close()
     assert compiled.strategy == "forest_levels"
-    names, values = reason_table(scored, compiled)
-    keep, credits, _ = case_reference(case.name)
-    feature_names = list(case.forest.feature_names)
-    for row, ref in zip(keep.tolist(), credits, strict=True):
-        order = sorted(range(len(ref)), key=lambda i: (-abs(ref[i]), i))[:3]
-        assert names[row].tolist() == [feature_names[i] for i in order], row
-        assert np.abs(values[row] - ref[order]).max() <= TOLERANCE
+    assert_top_three(scored, compiled, case)
 
 
 @pytest.mark.parametrize("strategy", ["nested_case", "node_arrays", "depth_staged",
@@ -218,13 +223,7 @@ def test_top_three_on_every_duckdb_strategy(engines, strategy):
     case = cases()["breast_cancer_missing"]
     scored, compiled = run(engines("duckdb"), case, 3, strategy=strategy)
     assert compiled.strategy == strategy
-    names, values = reason_table(scored, compiled)
-    keep, credits, _ = case_reference(case.name)
-    feature_names = list(case.forest.feature_names)
-    for row, ref in zip(keep.tolist(), credits, strict=True):
-        order = sorted(range(len(ref)), key=lambda i: (-abs(ref[i]), i))[:3]
-        assert names[row].tolist() == [feature_names[i] for i in order], row
-        assert np.abs(values[row] - ref[order]).max() <= TOLERANCE
+    assert_top_three(scored, compiled, case)
     if strategy == "nested_case":  # the verifier's own check, once
         request = ScoringRequest(table="t2s_reasons_breast_cancer_missing", keys=(KEY,),
                                  reasons=3, strategy=strategy)
