@@ -47,7 +47,7 @@ from tree2sql.strategies.base import (
     array_from_numbers,
     require_keys,
 )
-from tree2sql.strategies.text_arrays import REQUIRED_KEYS, TextArrays
+from tree2sql.strategies.text_arrays import REQUIRED_KEYS, TextArrays, stage_constants
 
 # Walk entries per node (splits, and leaves carried down) up to which leaves are carried.
 # Measured (benchmarks/README.md): the default benchmark forest walks 1.13 per node; the
@@ -168,9 +168,9 @@ class ForestLevels(TextArrays):
             forest, depth = ctx.forest, self.depth(ctx.forest)
             carry, _ = self._entries(forest, depth)
             levels, leaves = forest_layout(forest, depth, len(ctx.features), ctx.bounds, carry)
-            shallowest = min(int(tree.node_depths()[tree.left == LEAF].min())
-                             for tree in forest.trees)
-            self._walk = Walk(levels, leaves, depth if carry else shallowest + 1)
+            tested_from = depth if carry else 1 + min(
+                int(tree.node_depths()[tree.left == LEAF].min()) for tree in forest.trees)
+            self._walk = Walk(levels, leaves, tested_from)
         return self._walk
 
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
@@ -190,8 +190,7 @@ class ForestLevels(TextArrays):
                        for what, values in arrays.items()}
             if "constant_alias" in p.raw:  # named in the stage's WITH
                 names = {what: self._name(ctx, what, k) for what in arrays}
-                named = "WITH " + ",\n".join(p.raw["constant_alias"].format(
-                    value=written[what], name=names[what]) for what in arrays) + "\n"
+                named = stage_constants(p, [(names[what], written[what]) for what in arrays])
             else:  # each array is read once: written where it is read
                 names, named = written, ""
             value = self._index(ctx, xs, self._index(ctx, names["slot"], g))

@@ -38,7 +38,12 @@ import numpy as np
 from tree2sql.dialects import Profile
 from tree2sql.forest import LEAF, Forest, Tree
 from tree2sql.strategies.base import Context, array_from_texts, require_keys
-from tree2sql.strategies.text_arrays import REQUIRED_KEYS, TOP_LEVELS, TextArrays
+from tree2sql.strategies.text_arrays import (
+    REQUIRED_KEYS,
+    TOP_LEVELS,
+    TextArrays,
+    stage_constants,
+)
 
 
 def breadth_first(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
@@ -124,9 +129,8 @@ class LevelArrays(TextArrays):
             starts, texts = self._levels(ctx, t)
             above, end = int(starts[tree_level]), int(starts[tree_level + 1])
             read = {what: self._name(ctx, what, t) for what in texts}
-            constants += [p.raw["constant_alias"].format(
-                value=array_from_texts(p, items[above:end], element[what]), name=read[what])
-                for what, items in texts.items()]
+            constants += [(read[what], array_from_texts(p, items[above:end], element[what]))
+                          for what, items in texts.items()]
             value = self._index(ctx, ctx.prefix("xs"), self._index(ctx, read["slot"], n))
             bound, right = (self._index(ctx, read[what], n) for what in ("bound", "right"))
             step = f"{right} - {p.indicator(f'{value} <= {bound}')}"
@@ -134,8 +138,8 @@ class LevelArrays(TextArrays):
                 done = f"{n} + {above}" if tree_level == depth - 1 else f"{n} - {end - above}"
                 step = f"CASE WHEN {n} <= 0 THEN {done} ELSE {step} END"
             steps.append(f"{step} AS {n}")
-        named = "WITH " + ",\n".join(constants) + "\n" if constants else ""
-        return named + "SELECT " + ",\n  ".join([*keep, *steps]) + f"\nFROM {source}"
+        return (stage_constants(p, constants) + "SELECT " + ",\n  ".join([*keep, *steps])
+                + f"\nFROM {source}")
 
     def _shallowest_leaf(self, forest: Forest, t: int) -> int:
         """Depth of tree t's shallowest leaf (asked once per level: kept)."""

@@ -63,6 +63,15 @@ REQUIRED_KEYS = ("array_from_text", "array_literal", "array_index", "integer_typ
                  "nan_literal", "infinity_literal")
 
 
+def stage_constants(profile: Profile, named: list[tuple[str, str]]) -> str:
+    """A stage's own WITH clause naming `named` (name, value) constants (profile key
+    `constant_alias`), ahead of its SELECT; empty when there are none."""
+    if not named:
+        return ""
+    return "WITH " + ",\n".join(profile.raw["constant_alias"].format(value=value, name=name)
+                               for name, value in named) + "\n"
+
+
 def preorder_positions(tree: Tree, depth: np.ndarray | None = None,
                        ) -> tuple[np.ndarray, np.ndarray]:
     """(order, position): order[i] is the node at position i (root first, left subtree
