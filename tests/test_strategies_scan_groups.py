@@ -57,6 +57,10 @@ def test_planner_takes_it_only_for_a_checked_table(small_scans) -> None:
     table = compile_forest(forest, ScoringRequest("t", (KEY,), row_identity=True), "postgres")
     assert table.strategy == "scan_groups"
     assert table.sql.count("\nJOIN (") == 2  # three scans of 4 trees each
+    # The first two scans' join is fenced, so the third joins its result: the statement's
+    # join order is the plan's.
+    assert table.sql.count('WITH "__t2s_fence" AS (SELECT 1)\nSELECT *\nFROM (') == 1
+    assert table.sql.count(') AS "__t2s_join1"\nJOIN (') == 1
     assert 'tableoid AS "__t2s_row0"' in table.sql and 'ctid AS "__t2s_row1"' in table.sql
     assert '"__t2s_checked" AS NOT MATERIALIZED (' in table.sql
     forced = compile_forest(forest, ScoringRequest("t", (KEY,), strategy="scan_groups"),
@@ -138,3 +142,33 @@ def test_deploy_over_a_table_uses_it_and_verifies_live(pg, small_scans, form) ->
     assert result.compiled.strategy == "scan_groups"
     assert report is not None and report.agrees, report.to_text()
     assert report.rows > 0
+
+
+def test_scans_joins_and_sums_run_in_the_parallel_workers(pg, small_scans) -> None:
+    """The profile's fence (a WITH clause, not OFFSET 0, which keeps a subquery out of the
+    workers) and settings let PostgreSQL's planner put one Gather above the joins, so the
+    scans, the hash joins and the sums all run in the parallel workers, joined in the
+    statement's order so that each hash table holds one scan's rows. Checked in the
+    server's own plan (PostgreSQL documentation, "EXPLAIN"). The test table is small: the
+    three cost settings make the plan the one the benchmark's 1M rows and deep trees get
+    (parallel scans considered for any table, and expressions priced as if large)."""
+    case = cases()["wine"]
+    profile = load_profile("postgres")
+    load_rows(pg, profile, "cellar", case.X, case.forest.feature_names, case.null_mask)
+    compiled = compile_forest(case.forest, ScoringRequest("cellar", (KEY,), row_identity=True),
+                              profile)
+    assert compiled.strategy == "scan_groups"
+    for statement in [*compiled.setup, "SET min_parallel_table_scan_size = 0",
+                      "SET parallel_setup_cost = 0", "SET cpu_operator_cost = 1"]:
+        pg.execute(statement)
+    plan = [line.strip() for line in pg.query(f"EXPLAIN {compiled.sql}")["QUERY PLAN"]]
+    nodes = [line.removeprefix("->  ").split("  (")[0] for line in plan]
+    assert nodes.count("Gather") == 1, plan
+    below = nodes[nodes.index("Gather") + 1:]
+    assert sum(node == "Parallel Hash Join" for node in below) == 2, plan
+    assert sum(node.startswith("Parallel Seq Scan on cellar") for node in below) == 3, plan
+    # Each hash table holds one scan's rows, never a join's (whose row count the planner
+    # overestimates by orders of magnitude, and sizes its batches on disk by).
+    hashed = [below[i + 1] for i, node in enumerate(below) if node == "Parallel Hash"]
+    assert len(hashed) == 2, plan
+    assert all(node.startswith(("Parallel Seq Scan", "Subquery Scan")) for node in hashed), plan

@@ -340,8 +340,8 @@ def test_array_shape_forced_where_the_profile_lacks_its_syntax(strategy: str) ->
 
 def test_case_leaves_walks_each_tree_once_for_every_output() -> None:
     """PostgreSQL's shape: one CASE per split whatever the number of classes (nested_case
-    writes each tree once per class), and the leaf stage fenced with OFFSET 0 so the
-    planner cannot copy the walks back into each output. Wine: Forina et al., UCI ML
+    writes each tree once per class), and the leaf stage fenced by a WITH clause of its
+    own so the planner cannot copy the walks back into each output. Wine: Forina et al., UCI ML
     repository (3 classes)."""
     X, y = load_wine(return_X_y=True)
     forest = ingest(RandomForestClassifier(n_estimators=5, max_depth=4, random_state=0)
@@ -351,7 +351,7 @@ def test_case_leaves_walks_each_tree_once_for_every_output() -> None:
     leaves = compile_forest(forest, request, "postgres")
     assert leaves.strategy == "case_leaves"
     assert leaves.sql.count("CASE WHEN") == splits + 1 + forest.n_outputs + 1  # guard, label
-    assert "\nOFFSET 0\n" in leaves.sql
+    assert '"__t2s_leaves" AS (\nWITH "__t2s_fence" AS (SELECT 1)\nSELECT ' in leaves.sql
     nested = compile_forest(forest, ScoringRequest("t", ("k",), strategy="nested_case"),
                             "postgres")
     assert nested.sql.count("CASE WHEN") == splits * forest.n_outputs + 1 + forest.n_outputs + 1

@@ -5,11 +5,26 @@ Why (figures in benchmarks/README.md, PostgreSQL shapes): a row engine runs ever
 CASE program for one row before the next row, and the programs of 100 deep trees no
 longer fit the processor's caches, so each node visited costs about twice what it does
 with 20 trees. Walking 20 trees over all rows, then the next 20, keeps one group's
-program in cache; each group's fenced scan runs in the parallel workers, and the joins
-cost less than the cache misses they save:
+program in cache; the joins cost less than the cache misses they save. Each group is
+fenced by the profile's `leaf_stage_fence` (PostgreSQL: a WITH clause of its own), which
+keeps its walks from being copied into the sums and still lets the planner hand the
+scans, the joins and the sums to the parallel workers (a Gather above the joins). The
+rows joined so far are fenced too, so each scan joins them in turn, in the statement's
+order:
 
-    SELECT * FROM (SELECT row..., keys, ok, leaf_0 ... leaf_19 FROM checked OFFSET 0) g0
-    JOIN (SELECT row..., leaf_20 ... leaf_39 FROM checked OFFSET 0) g1 USING (row...) ...
+    SELECT * FROM (WITH fence AS (SELECT 1)
+                   SELECT * FROM (WITH fence ... SELECT row..., keys, ok, leaf_0 ... leaf_19
+                                  FROM checked) g0
+                   JOIN (WITH fence ... SELECT row..., leaf_20 ... leaf_39 FROM checked) g1
+                   USING (row...)) j1
+    JOIN (WITH fence ... SELECT row..., leaf_40 ... FROM checked) g2 USING (row...) ...
+
+The order matters for the hash joins' memory: PostgreSQL cannot see that the row
+identity is unique through the fenced scans, so it estimates each join's rows as if it
+multiplied them (five scans of 1M rows: 390 billion) and sizes a hash table's batches on
+disk by that estimate. Free to reorder, it hashed one join's result for another, in
+524,288 batches (ten scans of 1M rows: 16 GB of temporary files, stopped after 4
+minutes); in this order every hash table holds one scan's rows, whose count it knows.
 
 The join needs a key that is unique and never NULL in every row the statement reads,
 whatever the user's keys are: the profile's `row_identity` (PostgreSQL: `tableoid, ctid`,
@@ -18,9 +33,10 @@ statement's snapshot). A view has none, so the planner takes this shape only for
 checked to be a stored table (`ScoringRequest.row_identity`); the source stage must be
 read once per group, so the compiler writes it `cte_inlined` (NOT MATERIALIZED).
 
-The joins sort (or hash) every group's rows, which spill to temporary files past
-`work_mem`: about 0.5 KB per row scored (1M rows: 522 MB, against case_leaves' 32 MB for its
-stored scores; measured on PostgreSQL 15 with the default work_mem of 4 MB).
+The joins hash every group's rows, which spill to temporary files past `work_mem`: about
+1.5 KB per row scored (1M rows: 1.5 GB in 414 files; 522 MB when the joins ran in the
+leader; case_leaves: 32 MB for its stored scores; measured on PostgreSQL 15 with the
+default work_mem of 4 MB).
 
 Profile keys: those of case_leaves, `row_identity` (expressions over the table) and
 `cte_inlined`.
@@ -56,13 +72,19 @@ class ScanGroups(CaseLeaves):
         require_keys(ctx.profile, SCAN_KEYS, self.name)
         walks, q = self.walks(ctx), ctx.profile.quote
         using = f" USING ({', '.join(ctx.identity)})"
-        parts = ["SELECT *\nFROM "]
-        for g, trees in enumerate(scan_groups(len(walks))):
+        groups = scan_groups(len(walks))
+        rows: list[str] = []  # the rows joined so far, as a FROM item
+        for g, trees in enumerate(groups):
             carried = [*ctx.identity, *([*ctx.keys, ctx.ok] if g == 0 else [])]
-            parts += ["\nJOIN (\n" if g else "(\n",
-                      *self.walk_stage(ctx, carried, walks[trees.start:trees.stop]),
-                      f"\n) AS {q(f'__t2s_scan{g}')}", using if g else ""]
-        return [(ctx.prefix("leaves"), "".join(parts))]
+            rows_next = ["(\n", *self.walk_stage(ctx, carried, walks[trees.start:trees.stop]),
+                         f"\n) AS {q(f'__t2s_scan{g}')}"]
+            if g:
+                joined = ["SELECT *\nFROM ", *rows, "\nJOIN ", *rows_next, using]
+                if g == len(groups) - 1:
+                    return [(ctx.prefix("leaves"), "".join(joined))]
+                rows_next = ["(\n", self.fence(ctx), *joined, f"\n) AS {q(f'__t2s_join{g}')}"]
+            rows = rows_next
+        return [(ctx.prefix("leaves"), "".join(["SELECT *\nFROM ", *rows]))]  # one group
 
     def inlined_stages(self, ctx: Context) -> set[str]:
         return {ctx.source}

@@ -4,6 +4,8 @@ SET parallel_leader_participation = off;
 
 SET enable_mergejoin = off;
 
+SET parallel_tuple_cost = 0;
+
 -- tree2sql 0.1.0: scikit-learn RandomForestClassifier (3 trees)
 -- model fingerprint sha256:33dc85aced683fe47dfbfed29c8abc7e1037fbb1e15363e2c71b6d56eb7d3ebb
 -- dialect postgres, strategy depth_staged, combine average

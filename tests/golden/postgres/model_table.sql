@@ -4,6 +4,8 @@ SET parallel_leader_participation = off;
 
 SET enable_mergejoin = off;
 
+SET parallel_tuple_cost = 0;
+
 DROP TABLE IF EXISTS "__t2s_model_33dc85aced683fe4";
 
 CREATE TABLE "__t2s_model_33dc85aced683fe4" ("tree" INTEGER, "node" INTEGER, "feature" INTEGER, "bound" DOUBLE PRECISION, "next_left" INTEGER, "next_right" INTEGER, "next_missing" INTEGER, "value_0" DOUBLE PRECISION, "value_1" DOUBLE PRECISION, "value_2" DOUBLE PRECISION);
