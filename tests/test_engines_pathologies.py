@@ -45,6 +45,7 @@ from tree2sql.compiler import ScoringRequest, compile_forest
 from tree2sql.dialects import load_profile
 from tree2sql.engines import connect
 from tree2sql.ingest import ingest
+from tree2sql.strategies.depth_staged import Lookups
 from tree2sql.verify import verify
 
 GENEROUS_SECONDS = 120  # a bound that only a pathology (minutes of JIT) would cross
@@ -239,3 +240,27 @@ def test_grown_trees_stage_and_search_their_leaves(big_forest, tmp_path, dialect
     finally:
         engine.close()
     assert report.disagreements == 0 and report.max_abs_diff <= 1e-12, report.to_text()
+
+
+@pytest.mark.parametrize("levels", [1, 2, 3, 12])
+def test_lookups_find_every_id_on_sqlite(levels: int) -> None:
+    """The searches depth_staged writes (laid out for several lookups at once) give each
+    listed id its own value and any other id the fallback, run by SQLite itself (the
+    Python standard library's), for lists from one id to more than FLAT_IDS * 2**levels."""
+    rng = np.random.default_rng(levels)
+    id_lists = [np.sort(rng.choice(500, size=count, replace=False))
+                for count in (1, 2, 4, 5, 9, 33, 130)]
+    nodes = [f'"n{j}"' for j in range(len(id_lists))]
+    fallbacks = [None if j % 2 else "-1" for j in range(len(id_lists))]
+    lookups = Lookups(nodes, id_lists, levels, fallbacks)
+    con = sqlite3.connect(":memory:")
+    for j, ids in enumerate(id_lists):
+        values = [str(1000 + 7 * i) for i in range(len(ids))]
+        text = lookups.render(j, values)
+        probes = ids.tolist() + ([] if fallbacks[j] is None else [-5, 501, int(ids[0]) + 1000])
+        for probe in probes:
+            found = con.execute(f'SELECT {text} FROM (SELECT ? AS {nodes[j]})',
+                                (probe,)).fetchone()[0]
+            expected = (1000 + 7 * ids.tolist().index(probe) if probe in ids.tolist()
+                        else -1)
+            assert found == expected, (j, probe, text[:200])

@@ -9,7 +9,7 @@ every tree from the node it reached at depth s*k down at most k more levels:
 
 so no expression nests deeper than k + 1. A tree that reached a leaf keeps its node id
 (the ELSE branch). The last term maps a tree's leaf id to its value. Where the profile can
-fence stages, both lookups are binary searches over the ids (`node_lookup`), and a stage
+fence stages, both lookups are binary searches over the ids (`Lookups`), and a stage
 walks as many fewer levels as its search is deep; elsewhere they list the ids flat. Node
 ids are the model's own, so the same SQL can report the leaf each row reached.
 """
@@ -17,10 +17,12 @@ ids are the model's own, so the same SQL can report the leaf each row reached.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import NamedTuple
 
 import numpy as np
 
 from tree2sql.dialects import Profile
+from tree2sql.exact import integer_texts
 from tree2sql.forest import LEAF, Forest
 from tree2sql.strategies.base import (
     Context,
@@ -58,41 +60,104 @@ def levels_per_stage(profile: Profile) -> int:
     return max(1, int(levels))
 
 
-def node_lookup(node: str, ids: Sequence[int], values: Sequence[str], levels: int,
-                otherwise: str | None = None) -> str:
-    """`values[i]` for the id `ids[i]` held in column `node` (ids ascending): a binary
-    search at most `levels` CASE levels deep whose last level lists its few ids flat;
-    `otherwise` for an id not listed (None: every row holds one of `ids`).
+class _Level(NamedTuple):
+    """One level of several binary searches: each interval's lookup, its ids [low,
+    low + size), and how it is written."""
+
+    look: np.ndarray
+    low: np.ndarray
+    size: np.ndarray
+    bare: np.ndarray  # one id and nothing else possible: its value alone
+    flat: np.ndarray  # `CASE n WHEN id THEN value ...` over its ids
+    split: np.ndarray  # halved at low + size // 2; its halves are the next level's
+
+
+def _search_levels(counts: np.ndarray, levels: int, bare_ok: np.ndarray) -> list[_Level]:
+    """The intervals of every search, level by level; a level's left halves come first,
+    then its right halves, each in the order of the splits they come from."""
+    found: list[_Level] = []
+    look, low, size = np.arange(len(counts)), np.zeros(len(counts), np.int64), counts
+    levels_left = np.full(len(counts), levels)
+    while look.size:
+        bare = (size == 1) & bare_ok[look]
+        flat = ~bare & ((levels_left <= 1) | (size <= FLAT_IDS))
+        split = ~bare & ~flat
+        found.append(_Level(look, low, size, bare, flat, split))
+        left = size[split] // 2
+        look = np.concatenate([look[split]] * 2)
+        levels_left = np.concatenate([levels_left[split] - 1] * 2)
+        low = np.concatenate([low[split], low[split] + left])
+        size = np.concatenate([left, size[split] - left])
+    return found
+
+
+class Lookups:
+    """Lookups of `values[i]` for the id `ids[j][i]` held in column `nodes[j]` (ids
+    ascending), each a binary search at most `levels` CASE levels deep whose last level
+    lists its few ids flat, `otherwise[j]` for an id not listed (None: every row holds
+    one of its ids).
 
     A flat `CASE n WHEN ...` over a fully grown tree's thousand leaves costs a row
     engine one comparison per leaf passed (SQLite: 58 us per tree and row, measured on
     trees of 3,000 nodes); the search costs about log2(leaves) comparisons.
+
+    Every lookup's text is laid out at once, level by level in numpy, with a hole for
+    each value; each output (a class's values, the node ids a stage walks to) only fills
+    one lookup's holes. Written one CASE per Python call, the searches took a third of a
+    fully grown forest's compile. A split writes five pieces around its halves (`CASE
+    WHEN n < `, the middle id, ` THEN `, left half, ` ELSE `, right half, ` END`); a flat
+    list `CASE n`, four per id (` WHEN `, id, ` THEN `, value) and its ending.
     """
-    parts: list[str] = []
-    ending = " END" if otherwise is None else f" ELSE {otherwise} END"
 
-    def search(low: int, high: int, levels: int) -> None:
-        if high - low == 1 and otherwise is None:
-            parts.append(values[low])
-        elif levels <= 1 or high - low <= FLAT_IDS:
-            parts.append(f"CASE {node}")
-            for i in range(low, high):
-                parts.extend((" WHEN ", str(ids[i]), " THEN ", values[i]))
-            parts.append(ending)
-        else:
-            half = low + (high - low) // 2
-            parts.append(f"CASE WHEN {node} < {ids[half]} THEN ")
-            search(low, half, levels - 1)
-            parts.append(" ELSE ")
-            search(half, high, levels - 1)
-            parts.append(" END")
+    def __init__(self, nodes: Sequence[str], ids: Sequence[Sequence[int]], levels: int,
+                 otherwise: Sequence[str | None]) -> None:
+        counts = np.array([len(i) for i in ids], dtype=np.int64)
+        base = np.concatenate([[0], np.cumsum(counts)[:-1]])  # each lookup's first id
+        id_texts = integer_texts(np.concatenate([np.asarray(i, dtype=np.int64) for i in ids]))
+        opening = np.array([f"CASE {n}" for n in nodes], dtype=object)
+        below = np.array([f"CASE WHEN {n} < " for n in nodes], dtype=object)
+        ending = np.array([" END" if o is None else f" ELSE {o} END" for o in otherwise],
+                          dtype=object)
+        found = _search_levels(counts, levels, np.array([o is None for o in otherwise]))
+        pieces = [np.empty(0, np.int64)] * (len(found) + 1)  # per level, each interval's
+        for d in range(len(found) - 1, -1, -1):
+            level, halves = found[d], pieces[d + 1]
+            pieces[d] = np.where(level.bare, 1, 2 + 4 * level.size)
+            splits = int(level.split.sum())
+            pieces[d][level.split] = 5 + halves[:splits] + halves[splits:]
+        self._ends = np.cumsum(pieces[0])
+        self._begins = self._ends - pieces[0]
+        text = np.empty(int(self._ends[-1]), dtype=object)
+        holes = np.empty(int(counts.sum()), dtype=np.int64)  # place of each value
+        start = self._begins
+        for d, level in enumerate(found):
+            at, look = start[level.split], level.look[level.split]
+            left = pieces[d + 1][:len(at)]
+            middle = base[look] + level.low[level.split] + level.size[level.split] // 2
+            text[at], text[at + 1], text[at + 2] = below[look], id_texts[middle], " THEN "
+            text[at + 3 + left], text[at + pieces[d][level.split] - 1] = " ELSE ", " END"
+            holes[base[level.look[level.bare]] + level.low[level.bare]] = start[level.bare]
+            at, look, size = start[level.flat], level.look[level.flat], level.size[level.flat]
+            text[at], text[at + 1 + 4 * size] = opening[look], ending[look]
+            k = np.arange(int(size.sum())) - np.repeat(np.cumsum(size) - size, size)
+            listed = np.repeat(at, size) + 1 + 4 * k
+            first = np.repeat(base[look] + level.low[level.flat], size) + k
+            text[listed], text[listed + 1], text[listed + 2] = " WHEN ", id_texts[first], " THEN "
+            holes[first] = listed + 3
+            start = np.concatenate([start[level.split] + 3, start[level.split] + 4 + left])
+        self._text, self._holes, self._base, self._counts = text, holes, base, counts
 
-    search(0, len(ids), levels)
-    return "".join(parts)
+    def render(self, j: int, values: Sequence[str]) -> str:
+        """Lookup j's text, its holes filled with `values` (in the order of its ids)."""
+        begin, end, first = int(self._begins[j]), int(self._ends[j]), int(self._base[j])
+        text = self._text[begin:end].copy()
+        text[self._holes[first:first + int(self._counts[j])] - begin] = np.array(
+            values, dtype=object)
+        return "".join(text.tolist())
 
 
 def lookup_levels(count: int) -> int:
-    """CASE levels `node_lookup` needs to bring `count` ids down to flat lists."""
+    """CASE levels a search (`Lookups`) needs to bring `count` ids down to flat lists."""
     levels = 1
     while count > FLAT_IDS:
         count, levels = count - count // 2, levels + 1
@@ -113,6 +178,7 @@ class DepthStaged(Strategy):
     def __init__(self) -> None:
         self._depths: list[np.ndarray] = []  # per tree, each node's depth
         self._stages: list[tuple[int, int, int]] | None = None
+        self._leaf_lookups: Lookups | None = None  # every tree's leaf lookup
 
     def _node(self, ctx: Context, t: int) -> str:
         return ctx.prefix(f"n{t}")
@@ -152,6 +218,9 @@ class DepthStaged(Strategy):
         carried = [*ctx.keys, ctx.ok, *ctx.features]
         stacked, bound, offsets = side_by_side(trees, ctx.bounds)
         splits = split_conditions(ctx, stacked, bound)
+        # Each stacked node's text as its own tree's node id: what a cut walk ends in.
+        local_ids = integer_texts(np.arange(stacked.n_nodes) - np.repeat(
+            offsets, [tree.n_nodes for tree in trees]))
         stages: list[tuple[str, str]] = []
         source = ctx.source
         for start, levels, dispatch in plan:
@@ -159,23 +228,23 @@ class DepthStaged(Strategy):
             frontiers = [[0] if start == 0 else
                          self._frontier(ctx, t, start) if deepest[t] > start else []
                          for t in range(len(trees))]
-            walks = CaseText(stacked, splits, np.concatenate(
-                [np.array(f, dtype=np.int64) + offsets[t] for t, f in enumerate(frontiers)]),
-                levels)
-            root = 0
-            columns = []
-            for t, frontier in enumerate(frontiers):
-                node = self._node(ctx, t)
-                texts = [walks.render_root(root + i, str, int(offsets[t]))
-                         for i in range(len(frontier))]
-                root += len(frontier)
-                if start == 0:
-                    step = texts[0]
-                elif frontier:
-                    step = node_lookup(node, frontier, texts, dispatch, otherwise=node)
-                else:
-                    step = node
-                columns.append(f"{step} AS {node}")
+            roots = np.concatenate(
+                [np.array(f, dtype=np.int64) + offsets[t] for t, f in enumerate(frontiers)])
+            walked = CaseText(stacked, splits, roots, levels).render_roots(
+                range(len(roots)), local_ids)
+            nodes = [self._node(ctx, t) for t in range(len(trees))]
+            if start == 0:
+                steps = walked
+            else:  # each tree's rows found among its frontier; every search laid out at once
+                going = [t for t, frontier in enumerate(frontiers) if frontier]
+                lookups = Lookups([nodes[t] for t in going], [frontiers[t] for t in going],
+                                  dispatch, [nodes[t] for t in going])
+                steps, root = list(nodes), 0  # a tree already at its leaves keeps its node
+                for j, t in enumerate(going):
+                    count = len(frontiers[t])
+                    steps[t] = lookups.render(j, walked[root:root + count])
+                    root += count
+            columns = [f"{step} AS {node}" for step, node in zip(steps, nodes, strict=True)]
             name = ctx.prefix(f"level{start}")
             stages.append((name, "SELECT " + ",\n  ".join(carried + columns)
                            + f"\nFROM {source}"))
@@ -188,9 +257,14 @@ class DepthStaged(Strategy):
 
     def tree_term(self, ctx: Context, tree_index: int, leaf_value: LeafValue) -> str:
         leaves = np.flatnonzero(ctx.forest.trees[tree_index].left == LEAF)
-        levels = levels_per_stage(ctx.profile) if searches(ctx.profile) else 1
-        return node_lookup(self._node(ctx, tree_index), leaves.tolist(),
-                           leaf_literals(leaf_value, leaves), levels)
+        if self._leaf_lookups is None:  # every tree's at once, the same for every output
+            trees = range(len(ctx.forest.trees))
+            levels = levels_per_stage(ctx.profile) if searches(ctx.profile) else 1
+            self._leaf_lookups = Lookups(
+                [self._node(ctx, t) for t in trees],
+                [np.flatnonzero(ctx.forest.trees[t].left == LEAF) for t in trees],
+                levels, [None] * len(trees))
+        return self._leaf_lookups.render(tree_index, leaf_literals(leaf_value, leaves))
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         k = levels_per_stage(profile)
