@@ -4,6 +4,8 @@ the fix, and never a traceback. Agreement exits 0 and writes the JSON report."""
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 from pathlib import Path
 
 import joblib
@@ -222,3 +224,17 @@ def test_blank_url_is_a_usage_error(files, command, url):
     code, text = run(files, *args, "--url", url)
     assert code == 2, text
     assert "not a database URL" in text
+
+
+def test_python_dash_m_runs_the_same_command_line(files):
+    """`python -m tree2sql` (no script on PATH) compiles, and a usage error exits 2 there
+    too: the exit codes scripts rely on (click's convention for usage errors)."""
+    ok = subprocess.run([sys.executable, "-m", "tree2sql", "compile",
+                         str(files / "model.skops"), "--table", "t", "--key", "id"],
+                        capture_output=True, text=True)
+    assert ok.returncode == 0, ok.stderr
+    assert "SELECT" in ok.stdout
+    bad = subprocess.run([sys.executable, "-m", "tree2sql", "compile",
+                          str(files / "model.skops"), "--dialect", "nosuch", "--table", "t"],
+                         capture_output=True, text=True)
+    assert bad.returncode == 2 and "Traceback" not in bad.stderr, bad.stderr
