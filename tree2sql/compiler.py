@@ -250,21 +250,23 @@ class _QueryBuilder:
 
     def _statement(self, ctx: Context, ctes: list[tuple[str, str]], fenced: set[str],
                    select: str, header: str = "") -> str:
-        """`header`, WITH the strategy's named constants, the CTEs (`fenced` ones
-        materialized), then `select`: joined once, since a statement can be megabytes and
-        each copy of it costs time (fresh memory is slow to touch the first time)."""
+        """`header`, WITH the strategy's named constants, the CTEs (`fenced` ones kept
+        apart by the profile's `stage_fence`, else stored by its `cte_materialized`), then
+        `select`: joined once, since a statement can be megabytes and each copy of it
+        costs time (fresh memory is slow to touch the first time)."""
         p = self.profile
         constants = [p.raw["constant_alias"].format(value=value, name=name)
                      for name, value in self.strategy.constants(ctx)]
-        fence = p.raw.get("cte_materialized", "")
+        prefix, keyword = p.stage_fence(self.internal("fence")), p.raw.get("cte_materialized", "")
         inlined = self.strategy.inlined_stages(ctx)
         parts = [header, "WITH "]
         for item in constants:
             parts += [item, ",\n"]
         for name, body in ctes:
-            mark = fence if fence and name in fenced else \
+            mark = keyword if name in fenced and not prefix else \
                 p.raw["cte_inlined"] if name in inlined else ""
-            parts += [name, f" AS {mark + ' ' if mark else ''}(\n", body, "\n),\n"]
+            parts += [name, f" AS {mark + ' ' if mark else ''}(\n",
+                      prefix if name in fenced else "", body, "\n),\n"]
         parts[-1] = "\n)\n"
         parts.append(select)
         return "".join(parts)

@@ -120,7 +120,12 @@ def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
                      text_columns(forest, scoring.columns))
         if previous is None and request.form is not Form.FUNCTION:
             _refuse_foreign_object(engine, request.name)
-        request = replace(request, scoring=with_row_identity(engine, scoring))
+        if request.form in (Form.TABLE, Form.INCREMENTAL):  # these score every row
+            # A view is read through filters as often as whole, and a filter on its key
+            # reaches the table only in shapes without joins: scan_groups would walk all
+            # rows in every scan but the first (PostgreSQL, 200k rows, one row: 4.98 s
+            # against 0.60 s with case_leaves; benchmarks/README.md, PostgreSQL shapes).
+            request = replace(request, scoring=with_row_identity(engine, scoring))
     creates, compiled = _create_statements(profile, forest, request)
     deployment = Deployment(
         name=request.name, version=max((d.version for d in history), default=0) + 1,

@@ -87,6 +87,19 @@ class Profile:
         `_partial_sum_stages`)."""
         return int(self.raw.get("trees_per_stage", TREES_PER_STAGE))
 
+    def stage_fence(self, name: str) -> str:
+        """What goes before a stage's SELECT so the engine plans the stage apart instead
+        of flattening it into the query that reads it, over the quoted `name` of a CTE it
+        never reads (profile key `stage_fence`; "" where the profile has none)."""
+        fence = self.raw.get("stage_fence", "")
+        return fence.format(name=name) + "\n" if fence else ""
+
+    @property
+    def fences_stages(self) -> bool:
+        """A stage can be kept from being flattened into what reads it: by `stage_fence`
+        before its SELECT, or by the keyword `cte_materialized` that stores it."""
+        return bool(self.raw.get("stage_fence") or self.raw.get("cte_materialized"))
+
     @property
     def session_settings(self) -> tuple[str, ...]:
         """Statements to run in the session before scoring (profile key `session_settings`,

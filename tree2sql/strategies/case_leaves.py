@@ -10,12 +10,12 @@ a stage of its own, and each output is one array subscript:
     p_k    = ... + CAST('{v_k(leaf 1), v_k(leaf 2), ...}' AS DOUBLE PRECISION[])[leaf_t] + ...
 
 Leaves are numbered 1, 2, ... in node order. The leaf stage is fenced (profile key
-`leaf_stage_fence`, written before its SELECT) so that the engine does not copy each CASE
-into every output that reads it when it flattens the CTE.
+`stage_fence`, written before its SELECT) so that the engine does not copy each CASE into
+every output that reads it when it flattens the CTE.
 
 Profile keys: `array_from_text` over {text} and {element}, `array_text` over {items}
 (the array's text form, default `[{items}]`), `array_index` over {array} and {index},
-`integer_type`, and optionally `leaf_stage_fence`.
+`integer_type`, and optionally `stage_fence`.
 """
 
 from __future__ import annotations
@@ -70,16 +70,10 @@ class CaseLeaves(Strategy):
                 for t, case in zip(trees, cases.render_roots(trees, numbers), strict=True)]
 
     @staticmethod
-    def fence(ctx: Context) -> str:
-        """What goes before a SELECT so the engine plans it apart instead of flattening
-        it into the query reading it (profile key `leaf_stage_fence`; may be empty)."""
-        fence = ctx.profile.raw.get("leaf_stage_fence", "")
-        return fence.format(name=ctx.prefix("fence")) + "\n" if fence else ""
-
-    def walk_stage(self, ctx: Context, columns: list[str], walks: list[str]) -> list[str]:
+    def walk_stage(ctx: Context, columns: list[str], walks: list[str]) -> list[str]:
         """The pieces of a fenced SELECT of `columns` and `walks` over the source, for the
         caller to join once (the walks are megabytes; each copy costs fresh memory)."""
-        parts = [self.fence(ctx), "SELECT "]
+        parts = [ctx.profile.stage_fence(ctx.prefix("fence")), "SELECT "]
         for item in [*columns, *walks]:
             parts += [item, ",\n  "]
         parts[-1] = f"\nFROM {ctx.source}"

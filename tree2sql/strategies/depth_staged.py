@@ -166,9 +166,9 @@ def lookup_levels(count: int) -> int:
 
 def searches(profile: Profile) -> bool:
     """Lookups may search: a search reads the node id once per level, and only fenced
-    stages (`cte_materialized`) keep an engine that inlines CTEs from copying the id's
-    whole expression into each read."""
-    return bool(profile.raw.get("cte_materialized"))
+    stages (`Profile.fences_stages`) keep an engine that inlines CTEs from copying the
+    id's whole expression into each read."""
+    return profile.fences_stages
 
 
 class DepthStaged(Strategy):

@@ -6,7 +6,7 @@ CASE program for one row before the next row, and the programs of 100 deep trees
 longer fit the processor's caches, so each node visited costs about twice what it does
 with 20 trees. Walking 20 trees over all rows, then the next 20, keeps one group's
 program in cache; the joins cost less than the cache misses they save. Each group is
-fenced by the profile's `leaf_stage_fence` (PostgreSQL: a WITH clause of its own), which
+fenced by the profile's `stage_fence` (PostgreSQL: a WITH clause of its own), which
 keeps its walks from being copied into the sums and still lets the planner hand the
 scans, the joins and the sums to the parallel workers (a Gather above the joins). The
 rows joined so far are fenced too, so each scan joins them in turn, in the statement's
@@ -30,7 +30,10 @@ The join needs a key that is unique and never NULL in every row the statement re
 whatever the user's keys are: the profile's `row_identity` (PostgreSQL: `tableoid, ctid`,
 unique per row of a table, its partitions and inheritance children within one
 statement's snapshot). A view has none, so the planner takes this shape only for a source
-checked to be a stored table (`ScoringRequest.row_identity`); the source stage must be
+checked to be a stored table (`ScoringRequest.row_identity`), which deploy asks for only
+where every row is scored (a table, an incremental insert): a filter on a deployed view
+reaches the table through the first scan alone, and the other scans walk every row. The
+source stage must be
 read once per group, so the compiler writes it `cte_inlined` (NOT MATERIALIZED).
 
 The joins hash every group's rows, which spill to temporary files past `work_mem`: about
@@ -72,7 +75,7 @@ class ScanGroups(CaseLeaves):
         require_keys(ctx.profile, SCAN_KEYS, self.name)
         walks, q = self.walks(ctx), ctx.profile.quote
         using = f" USING ({', '.join(ctx.identity)})"
-        groups = scan_groups(len(walks))
+        groups, fence = scan_groups(len(walks)), ctx.profile.stage_fence(ctx.prefix("fence"))
         rows: list[str] = []  # the rows joined so far, as a FROM item
         for g, trees in enumerate(groups):
             carried = [*ctx.identity, *([*ctx.keys, ctx.ok] if g == 0 else [])]
@@ -82,7 +85,7 @@ class ScanGroups(CaseLeaves):
                 joined = ["SELECT *\nFROM ", *rows, "\nJOIN ", *rows_next, using]
                 if g == len(groups) - 1:
                     return [(ctx.prefix("leaves"), "".join(joined))]
-                rows_next = ["(\n", self.fence(ctx), *joined, f"\n) AS {q(f'__t2s_join{g}')}"]
+                rows_next = ["(\n", fence, *joined, f"\n) AS {q(f'__t2s_join{g}')}"]
             rows = rows_next
         return [(ctx.prefix("leaves"), "".join(["SELECT *\nFROM ", *rows]))]  # one group
 

@@ -122,7 +122,8 @@ SELECT "row id",
 FROM "__t2s_leaves"
 GROUP BY "__t2s_rid", "row id", "__t2s_ok"
 ),
-"__t2s_scores" AS MATERIALIZED (
+"__t2s_scores" AS (
+WITH "__t2s_fence" AS (SELECT 1)
 SELECT "row id",
   CASE WHEN "__t2s_ok" = 1 THEN ("__t2s_v0_0"
     + "__t2s_v1_0"
