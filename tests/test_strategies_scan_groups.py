@@ -133,11 +133,12 @@ def test_partitions_repeat_ctids_and_the_table_oid_keeps_rows_apart(pg, small_sc
 
 
 @pytest.mark.parametrize("form, shape", [(Form.TABLE, "scan_groups"),
-                                         (Form.INCREMENTAL, "scan_groups"),
+                                         (Form.INCREMENTAL, "case_leaves"),
                                          (Form.VIEW, "case_leaves")])
 def test_deploy_over_a_table_uses_it_and_verifies_live(pg, small_scans, form, shape) -> None:
-    """Forms that score every row take scan_groups; a view, which filters reach only
-    without the joins, keeps case_leaves."""
+    """A table, which scores every row, takes scan_groups; a view, which filters reach only
+    without the joins, and an incremental insert, which scores only new rows, keep
+    case_leaves."""
     case = cases()["wine"]
     load_rows(pg, load_profile("postgres"), "bottles", case.X, case.forest.feature_names,
               case.null_mask)
@@ -198,3 +199,26 @@ def test_a_filter_on_a_deployed_view_reaches_the_table(pg, small_scans) -> None:
     every = pg.query('SELECT * FROM "wine_scores"')
     row = list(every[KEY]).index(7)
     assert all(one[c][0] == every[c][row] for c in one), (one, row)
+
+
+def test_an_incremental_run_scores_only_new_rows(pg, small_scans) -> None:
+    """The insert leaves out the source rows whose keys the target holds before any tree is
+    walked: in PostgreSQL's plan the scan of the source sits under an anti-join with the
+    target, besides the insert's own check of the scored rows (PostgreSQL documentation,
+    "EXPLAIN"), and a run adds exactly the new rows."""
+    case = cases()["wine"]
+    profile = load_profile("postgres")
+    nulls = None if case.null_mask is None else case.null_mask[:100]
+    load_rows(pg, profile, "bottles", case.X[:100], case.forest.feature_names, nulls)
+    request = DeployRequest("wine_inc", Form.INCREMENTAL, ScoringRequest("bottles", (KEY,)))
+    plan, _ = deploy(pg, case.estimator, case.forest, request)
+    insert = next(s for s in plan.statements if 'INSERT INTO "wine_inc"' in s)
+    assert 'WHERE NOT EXISTS (SELECT 1 FROM "wine_inc" "__t2s_old" WHERE ' in insert
+    for setting in profile.session_settings:
+        pg.execute(setting)
+    select = insert[insert.index("SELECT"):].replace("\nON CONFLICT DO NOTHING", "")
+    lines = [line.strip() for line in pg.query(f"EXPLAIN {select}")["QUERY PLAN"]]
+    scans = [line for line in lines if "Scan on bottles" in line]
+    anti = [line for line in lines if "Anti Join" in line]
+    assert len(scans) == 1 and len(anti) == 2, lines
+    assert int(pg.query('SELECT COUNT(*) AS n FROM "wine_inc"')["n"][0]) == 100

@@ -56,6 +56,9 @@ class ScoringRequest:
     # The table is checked to be a stored one, whose rows have the profile's physical
     # `row_identity` (tree2sql.schema.with_row_identity): shapes that join on it may be used.
     row_identity: bool = False
+    # A table of rows already scored, keyed like the source: source rows whose keys it
+    # holds are left out before scoring (an incremental insert scores only new rows).
+    scored_in: str | None = None
 
 
 @dataclass(frozen=True)
@@ -306,8 +309,15 @@ class _QueryBuilder:
         self._checked_columns = [*self.keys, *inputs, self.internal("ok"),
                                  *self.features[self.forest.n_features:]]
         identity = [f"{expression} AS {name}" for expression, name in self.identity]
-        return (f"SELECT {self._select_list(identity + self.keys + cast)}\n"
-                f"FROM {p.qualified(self.request.table)}")
+        select = (f"SELECT {self._select_list(identity + self.keys + cast)}\n"
+                  f"FROM {p.qualified(self.request.table)}")
+        if self.request.scored_in is None:
+            return select
+        source, old = self.internal("source"), self.internal("old")
+        match = " AND ".join(f"{old}.{p.quote(k)} = {source}.{p.quote(k)}"
+                             for k in self.request.keys)
+        return (f"{select} {source}\nWHERE NOT EXISTS (SELECT 1 FROM "
+                f"{p.qualified(self.request.scored_in)} {old} WHERE {match})")
 
     def _derived_columns(self) -> list[str]:
         """Category tests as numeric inputs: 0 (left set), 1 (right set), NULL otherwise."""

@@ -120,11 +120,15 @@ def plan(engine: Engine | None, forest: Forest, request: DeployRequest,
                      text_columns(forest, scoring.columns))
         if previous is None and request.form is not Form.FUNCTION:
             _refuse_foreign_object(engine, request.name)
-        if request.form in (Form.TABLE, Form.INCREMENTAL):  # these score every row
+        if request.form is Form.TABLE:  # the one form that always scores every row
+            # Shapes that join scans on the row identity (scan_groups) pay off only there.
             # A view is read through filters as often as whole, and a filter on its key
-            # reaches the table only in shapes without joins: scan_groups would walk all
-            # rows in every scan but the first (PostgreSQL, 200k rows, one row: 4.98 s
-            # against 0.60 s with case_leaves; benchmarks/README.md, PostgreSQL shapes).
+            # reaches the table only in shapes without joins: scan_groups walked all rows
+            # in every scan but the first (PostgreSQL, 200k rows, one row: 4.98 s against
+            # 0.60 s with case_leaves). An incremental insert scores only the rows not yet
+            # inserted, whose few the planner joined in nested loops that walked each scan
+            # again for every row (PostgreSQL runs no INSERT in parallel workers, so the
+            # scans gain little there; benchmarks/README.md, PostgreSQL shapes).
             request = replace(request, scoring=with_row_identity(engine, scoring))
     creates, compiled = _create_statements(profile, forest, request)
     deployment = Deployment(
@@ -180,7 +184,9 @@ def _create_statements(profile: Profile, forest: Forest,
     elif request.form is Form.TABLE:
         body = [_ddl(profile, "table").format(name=name, query=compiled.sql)]
     else:
-        body = _incremental_statements(profile, request, compiled, header)
+        new_rows = compile_forest(forest, replace(request.scoring, scored_in=request.name),
+                                  profile.name)
+        body = _incremental_statements(profile, request, compiled, new_rows, header)
     first, *rest = [*setup, *body]
     return [header + first, *rest], compiled
 
@@ -190,10 +196,14 @@ def strategy_setup(profile: Profile, compiled: CompiledQuery) -> list[str]:
     return [s for s in compiled.setup if s not in profile.session_settings]
 
 
-def _incremental_statements(profile: Profile, request: DeployRequest,
-                            compiled: CompiledQuery, header: str) -> list[str]:
-    """An empty table of the outputs, a unique index on the keys, and the insert of the
-    rows whose keys it does not hold yet (headed too: each incremental run repeats it)."""
+def _incremental_statements(profile: Profile, request: DeployRequest, compiled: CompiledQuery,
+                            new_rows: CompiledQuery, header: str) -> list[str]:
+    """An empty table of the outputs (from `compiled`), a unique index on the keys, and the
+    insert of `new_rows`: the rows whose keys the table does not hold yet, left out before
+    scoring, so that a run scores only them (headed too: each incremental run repeats it).
+    The insert checks the keys once more on the scored rows, a few, which also gives the
+    SELECT the WHERE clause that SQLite's ON CONFLICT needs after it (SQLite
+    documentation, "UPSERT": parsing ambiguity)."""
     name, q = profile.qualified(request.name), profile.quote
     keys = ", ".join(q(k) for k in request.scoring.keys)
     new, old = q("__t2s_new"), q("__t2s_old")
@@ -203,7 +213,7 @@ def _incremental_statements(profile: Profile, request: DeployRequest,
     match = " AND ".join(f"{old}.{q(k)} = {new}.{q(k)}" for k in request.scoring.keys)
     conflict = profile.ddl.get("insert_conflict", "")
     insert = (f"{header}INSERT INTO {name} ({columns})\nSELECT {columns} FROM (\n"
-              f"{compiled.sql}\n) {new}\n"
+              f"{new_rows.sql}\n) {new}\n"
               f"WHERE NOT EXISTS (SELECT 1 FROM {name} {old} WHERE {match})"
               + (f"\n{conflict}" if conflict else ""))
     return [_ddl(profile, "table").format(name=name, query=empty),

@@ -31,9 +31,10 @@ whatever the user's keys are: the profile's `row_identity` (PostgreSQL: `tableoi
 unique per row of a table, its partitions and inheritance children within one
 statement's snapshot). A view has none, so the planner takes this shape only for a source
 checked to be a stored table (`ScoringRequest.row_identity`), which deploy asks for only
-where every row is scored (a table, an incremental insert): a filter on a deployed view
-reaches the table through the first scan alone, and the other scans walk every row. The
-source stage must be
+for a table, the one form that always scores every row: a filter on a deployed view
+reaches the table through the first scan alone, and the other scans walk every row; an
+incremental insert scores few rows, which the planner joined in nested loops. The source
+stage must be
 read once per group, so the compiler writes it `cte_inlined` (NOT MATERIALIZED).
 
 The joins hash every group's rows, which spill to temporary files past `work_mem`: about
