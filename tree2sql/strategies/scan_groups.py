@@ -80,14 +80,15 @@ class ScanGroups(CaseLeaves):
         rows: list[str] = []  # the rows joined so far, as a FROM item
         for g, trees in enumerate(groups):
             carried = [*ctx.identity, *([*ctx.keys, ctx.ok] if g == 0 else [])]
-            rows_next = ["(\n", *self.walk_stage(ctx, carried, walks[trees.start:trees.stop]),
-                         f"\n) AS {q(f'__t2s_scan{g}')}"]
-            if g:
-                joined = ["SELECT *\nFROM ", *rows, "\nJOIN ", *rows_next, using]
-                if g == len(groups) - 1:
-                    return [(ctx.prefix("leaves"), "".join(joined))]
-                rows_next = ["(\n", fence, *joined, f"\n) AS {q(f'__t2s_join{g}')}"]
-            rows = rows_next
+            scan = ["(\n", *self.walk_stage(ctx, carried, walks[trees.start:trees.stop]),
+                    f"\n) AS {q(f'__t2s_scan{g}')}"]
+            if not g:
+                rows = scan
+                continue
+            joined = ["SELECT *\nFROM ", *rows, "\nJOIN ", *scan, using]
+            if g == len(groups) - 1:
+                return [(ctx.prefix("leaves"), "".join(joined))]
+            rows = ["(\n", fence, *joined, f"\n) AS {q(f'__t2s_join{g}')}"]
         return [(ctx.prefix("leaves"), "".join(["SELECT *\nFROM ", *rows]))]  # one group
 
     def inlined_stages(self, ctx: Context) -> set[str]:
