@@ -154,6 +154,13 @@ def compile_leaf_ids(forest: Forest, request: ScoringRequest, dialect: str = "du
     return builder.render_leaf_ids()
 
 
+def not_held(profile: Profile, table: str, keys: Sequence[str], row: str) -> str:
+    """The condition that `table` holds no row with the keys of the row named `row`."""
+    q, old = profile.quote, profile.quote(INTERNAL_PREFIX + "old")
+    match = " AND ".join(f"{old}.{q(k)} = {row}.{q(k)}" for k in keys)
+    return f"NOT EXISTS (SELECT 1 FROM {profile.qualified(table)} {old} WHERE {match})"
+
+
 def _votes(values: np.ndarray) -> list[str]:
     """A vote (1.0 or 0.0) as the integer literal the majority sums add up."""
     return ["1" if v == 1.0 else "0" for v in values.tolist()]
@@ -313,11 +320,9 @@ class _QueryBuilder:
                   f"FROM {p.qualified(self.request.table)}")
         if self.request.scored_in is None:
             return select
-        source, old = self.internal("source"), self.internal("old")
-        match = " AND ".join(f"{old}.{p.quote(k)} = {source}.{p.quote(k)}"
-                             for k in self.request.keys)
-        return (f"{select} {source}\nWHERE NOT EXISTS (SELECT 1 FROM "
-                f"{p.qualified(self.request.scored_in)} {old} WHERE {match})")
+        source = self.internal("source")
+        return (f"{select} {source}\nWHERE "
+                f"{not_held(p, self.request.scored_in, self.request.keys, source)}")
 
     def _derived_columns(self) -> list[str]:
         """Category tests as numeric inputs: 0 (left set), 1 (right set), NULL otherwise."""

@@ -21,6 +21,7 @@ from tree2sql.compiler import (
     ScoringRequest,
     compile_forest,
     feature_columns,
+    not_held,
     text_columns,
 )
 from tree2sql.dialects import Profile, load_profile
@@ -206,15 +207,14 @@ def _incremental_statements(profile: Profile, request: DeployRequest, compiled: 
     documentation, "UPSERT": parsing ambiguity)."""
     name, q = profile.qualified(request.name), profile.quote
     keys = ", ".join(q(k) for k in request.scoring.keys)
-    new, old = q("__t2s_new"), q("__t2s_old")
+    new = q("__t2s_new")
     empty = f"SELECT * FROM (\n{compiled.sql}\n) {new} WHERE 1 = 0"
     index = q(f"{request.name.rpartition('.')[2]}_t2s_keys")
     columns = ", ".join(q(c) for c in compiled.output_columns)
-    match = " AND ".join(f"{old}.{q(k)} = {new}.{q(k)}" for k in request.scoring.keys)
     conflict = profile.ddl.get("insert_conflict", "")
     insert = (f"{header}INSERT INTO {name} ({columns})\nSELECT {columns} FROM (\n"
               f"{new_rows.sql}\n) {new}\n"
-              f"WHERE NOT EXISTS (SELECT 1 FROM {name} {old} WHERE {match})"
+              f"WHERE {not_held(profile, request.name, request.scoring.keys, new)}"
               + (f"\n{conflict}" if conflict else ""))
     return [_ddl(profile, "table").format(name=name, query=empty),
             f"CREATE UNIQUE INDEX {index} ON {name} ({keys})", insert]

@@ -221,6 +221,7 @@ class DepthStaged(Strategy):
         # Each stacked node's text as its own tree's node id: what a cut walk ends in.
         local_ids = integer_texts(np.arange(stacked.n_nodes) - np.repeat(
             offsets, [tree.n_nodes for tree in trees]))
+        nodes = [self._node(ctx, t) for t in range(len(trees))]
         stages: list[tuple[str, str]] = []
         source = ctx.source
         for start, levels, dispatch in plan:
@@ -232,7 +233,6 @@ class DepthStaged(Strategy):
                 [np.array(f, dtype=np.int64) + offsets[t] for t, f in enumerate(frontiers)])
             walked = CaseText(stacked, splits, roots, levels).render_roots(
                 range(len(roots)), local_ids)
-            nodes = [self._node(ctx, t) for t in range(len(trees))]
             if start == 0:
                 steps = walked
             else:  # each tree's rows found among its frontier; every search laid out at once
