@@ -72,6 +72,20 @@ def sqlite_row(sql: str):
     return sqlite3.connect(":memory:").execute(sql).fetchone()
 
 
+@pytest.mark.parametrize("engine", ["duckdb", "sqlite"])
+def test_bulk_literals_are_the_one_at_a_time_literals(engine):
+    """In bulk, values that repeat are formatted once each (sorted), values that hardly
+    repeat in input order; either way, and with a suffix, each text is the literal the
+    round-trip test below reads back."""
+    profile = load_profile(engine)
+    distinct = np.array(VALUES)
+    repeating = np.repeat(distinct[:500], 7)
+    for values in (distinct, repeating):
+        one_by_one = [profile.double(v) for v in values.tolist()]
+        assert profile.doubles(values) == one_by_one
+        assert profile.doubles(values, " THEN ") == [t + " THEN " for t in one_by_one]
+
+
 @pytest.mark.parametrize("engine, run", [("duckdb", duckdb_row), ("sqlite", sqlite_row)])
 def test_double_literals_round_trip(engine, run):
     assert len(VALUES) > 3000

@@ -107,13 +107,16 @@ def test_missing_sentinels_order_as_the_shape_needs() -> None:
 
 
 def test_layout_matches_a_plain_preorder_walk() -> None:
-    """The vectorized layout and depths equal the neutral model's own walks."""
+    """The vectorized layout and depths (worked out for every tree at once) equal the
+    neutral model's own walks: a node's depth is the length of its path from the root."""
     forest = cases()["wine"].forest
-    for tree in forest.trees:
+    fresh = replace(forest, trees=tuple(map(replace, forest.trees)))
+    for tree, depths in zip(fresh.trees, fresh.node_depths(), strict=True):
         order, position = preorder_positions(tree)
         assert order.tolist() == tree.preorder()
         assert np.array_equal(position[order], np.arange(tree.n_nodes))
-        assert int(tree.node_depths().max()) == tree.depth()
+        assert depths.tolist() == [len(tree.path_to(n)) - 1 for n in range(tree.n_nodes)]
+        assert tree.depth() == int(depths.max())
 
 
 def test_statement_holds_one_literal_per_array(monkeypatch: pytest.MonkeyPatch) -> None:

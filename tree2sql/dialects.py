@@ -76,10 +76,12 @@ class Profile:
         return (self.double_literal == "{text}"
                 and self.raw.get("literal_style", SHORTEST) == SHORTEST)
 
-    def doubles(self, values: np.ndarray) -> list[str]:
-        """`double` of each value, in bulk (tree2sql.exact.float_texts)."""
+    def doubles(self, values: np.ndarray, suffix: str = "") -> list[str]:
+        """`double` of each value, in bulk (tree2sql.exact.float_texts), each followed by
+        `suffix` at no extra cost (a shape's next fixed text, one string fewer to join)."""
         return float_texts(values, self.raw.get("literal_style", SHORTEST),
-                           self.raw.get("arithmetic_literal", "{text}"), self.double_literal)
+                           self.raw.get("arithmetic_literal", "{text}"),
+                           self.double_literal + suffix)
 
     @property
     def trees_per_stage(self) -> int:

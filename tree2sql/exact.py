@@ -61,6 +61,7 @@ EXACT_ARITHMETIC = "exact_arithmetic"
 EXACT_INTEGER = 2**53  # integers below this convert to double exactly
 POWER_OF_TEN_EXACT = 22  # 10**22 is the largest power of ten a double holds exactly
 POWER_OF_TWO_STEP = 62  # 2**62 still fits a 64-bit integer literal
+REPEAT_SAMPLE = 1000  # values float_texts looks at to tell whether they repeat
 
 
 def float_text(x: float, style: str = SHORTEST) -> str:
@@ -77,9 +78,11 @@ def float_texts(values: np.ndarray, style: str = SHORTEST, arithmetic: str = "{t
     The exact-arithmetic style is for engines whose decimal reader is not correctly
     rounded (SQLite 3.40 misreads about 1 in 5,000 ordinary decimals such as 0.087742647
     by one unit in the last place): see `_exact_arithmetic`; `arithmetic` is put around
-    each arithmetic form, then `template` around every text (both over {text}). Each
-    distinct bit pattern is formatted once (a forest's leaf values repeat: 0, 1, small
-    fractions).
+    each arithmetic form, then `template` around every text (both over {text}), in the
+    same pass that writes the number. Each distinct bit pattern is formatted once (a
+    forest's leaf values repeat: 0, 1, small fractions); values that hardly repeat in a
+    sample (a forest's bounds) are written in input order, so that reading them back in
+    that order touches memory in sequence. Either way the texts are the same.
     """
     floats = np.asarray(values, dtype=np.float64).ravel()
     if not np.isfinite(floats).all():
@@ -87,21 +90,25 @@ def float_texts(values: np.ndarray, style: str = SHORTEST, arithmetic: str = "{t
         raise ValueError(f"no SQL literal for non-finite value {bad!r}")
     if style not in (SHORTEST, EXACT_ARITHMETIC):
         raise ValueError(f"unknown literal style {style!r}")
-    distinct, where = np.unique(floats.view(np.int64), return_inverse=True)
-    distinct = distinct.view(np.float64)
+    bits = floats.view(np.int64)
+    sample = bits[::max(1, len(bits) // REPEAT_SAMPLE)]  # sorting them all costs more
+    if len(np.unique(sample)) > len(sample) // 2:  # hardly repeating (bounds): input order
+        distinct, where = floats, None
+    else:
+        distinct, where = np.unique(bits, return_inverse=True)
+        distinct = distinct.view(np.float64)
     before, after = template.split("{text}")
     if style == SHORTEST:
-        texts = [t if "e" in t else t + "e0" for t in shortest_texts(distinct)]
+        texts = [f"{before}{t}{after}" if "e" in t else f"{before}{t}e0{after}"
+                 for t in shortest_texts(distinct)]
     else:
-        texts = _exact_arithmetic(distinct, arithmetic)
-    if before or after:
-        texts = [f"{before}{text}{after}" for text in texts]
-    return np.array(texts, dtype=object)[where].tolist()
+        texts = _exact_arithmetic(distinct, arithmetic, (before, after))
+    return texts if where is None else np.array(texts, dtype=object)[where].tolist()
 
 
-def _exact_arithmetic(x: np.ndarray, arithmetic: str) -> list[str]:
+def _exact_arithmetic(x: np.ndarray, arithmetic: str, around: tuple[str, str]) -> list[str]:
     """x as read exactly by every engine: an integer's text, or an arithmetic form put
-    in `arithmetic` (over {text}).
+    in `arithmetic` (over {text}); every text between the two parts of `around`.
 
     Integers below 2**53 and powers of ten up to 1e22 convert exactly, and one IEEE
     multiply or divide is correctly rounded, so `(S / 1eK)` is exactly x when S / 10**K
@@ -112,8 +119,10 @@ def _exact_arithmetic(x: np.ndarray, arithmetic: str) -> list[str]:
     integral = x == np.trunc(x)
     small = integral & (np.abs(x) < EXACT_INTEGER)
     texts = np.full(len(x), None, dtype=object)
-    texts[small] = [repr(v) + "e0" for v in x[small].tolist()]  # sign of zero kept
-    wrap = tuple(arithmetic.split("{text}"))
+    before, after = around
+    texts[small] = [f"{before}{v!r}e0{after}" for v in x[small].tolist()]  # sign of 0 kept
+    opening, closing = arithmetic.split("{text}")
+    wrap = (before + opening, closing + after)
     _decimal_forms(x, texts, np.flatnonzero(~integral), True, wrap)
     _decimal_forms(x, texts, np.flatnonzero(integral & ~small), False, wrap)
     _binary_forms(x, texts, np.flatnonzero(texts == None), wrap)  # noqa: E711
@@ -135,25 +144,31 @@ def _decimal_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray, divide: boo
         first = found.argmax(axis=1)[has]
         at, k, digits = at[has], every_k[first], digits[np.flatnonzero(has), first]
     op, (opening, closing) = " / " if divide else " * ", wrap
-    forms[at] = [f"{opening}({d}{op}1e{p}){closing}" for d, p in
-                 zip(integer_texts_bulk(digits), k.astype(np.int64).tolist(), strict=True)]
+    # Each form's tail by K, made once: per value, only the digits are formatted.
+    tails = [f"{op}1e{p}){closing}" for p in range(POWER_OF_TEN_EXACT + 1)]
+    forms[at] = [f"{opening}({d}{tail}" for d, tail in
+                 zip(digits.astype(np.int64).tolist(), np.array(tails, dtype=object)[
+                     k.astype(np.int64)].tolist(), strict=True)]
 
 
 def _smallest_quotients(x: np.ndarray, at: np.ndarray) -> tuple[np.ndarray, np.ndarray,
                                                                   np.ndarray]:
     """(at, K, S) for those x[at] that are S / 10**K, with the smallest K. A form with K
     digits persists with more (10 S / 10**(K+1) is the same quotient), so the most digits
-    S allows are tried first and K is then found by bisection."""
+    S allows are tried first, then one fewer, and K is found by bisection only where that
+    works too (most bounds need every digit: 9 in 10 of a fully grown forest's)."""
     with np.errstate(divide="ignore", over="ignore"):
         most = np.floor(np.log10((EXACT_INTEGER - 1) / np.abs(x[at])))
     most = np.clip(most, 1, POWER_OF_TEN_EXACT)
     has = _candidates(x[at], 10.0 ** most, True)[1]
-    at, v = at[has], x[at[has]]
-    low, high = np.ones(len(at)), most[has]
-    while (low < high).any():
-        mid = np.floor((low + high) / 2)
-        found = _candidates(v, 10.0 ** mid, True)[1]
-        high, low = np.where(found, mid, high), np.where(found, low, mid + 1)
+    at, v, high = at[has], x[at[has]], most[has]
+    fewer = np.flatnonzero((high > 1) & _candidates(v, 10.0 ** (high - 1), True)[1])
+    low, below = np.ones(len(fewer)), high[fewer] - 1
+    while (low < below).any():
+        mid = np.floor((low + below) / 2)
+        found = _candidates(v[fewer], 10.0 ** mid, True)[1]
+        below, low = np.where(found, mid, below), np.where(found, low, mid + 1)
+    high[fewer] = below
     return at, high, _candidates(v, 10.0 ** high, True)[0]
 
 
@@ -175,24 +190,36 @@ def _candidates(v: np.ndarray, scale: np.ndarray, divide: bool) -> tuple[np.ndar
 _POWERS_OF_TWO = [str(2**k) for k in range(POWER_OF_TWO_STEP + 1)]
 
 
-_integer_table = np.array(["0"], dtype=object)
+def repeated(text: str, n: int) -> np.ndarray:
+    """An object array of n references to one str. np.full converts a str to a numpy
+    string and back, making n new strings: 20 ms, not 1 ms, for a grown forest's nodes."""
+    texts = np.empty(n, dtype=object)
+    texts[:] = text
+    return texts
 
 
-def integer_texts(values: np.ndarray) -> np.ndarray:
-    """str() of each integer, as an object array: small non-negative ones (node ids,
-    slots) from a table of their texts, grown on demand but never far past the numbers
-    asked for at once; others in bulk."""
-    global _integer_table
+_integer_tables: dict[str, np.ndarray] = {}  # by template: texts of 0, 1, 2, ...
+
+
+def integer_texts(values: np.ndarray, template: str = "{}") -> np.ndarray:
+    """str() of each integer, put in `template`, as an object array: small non-negative
+    ones (node ids, slots) from a table of their texts, grown on demand but never far
+    past the numbers asked for at once; others in bulk. A template spares the shape that
+    writes fixed text around each number (` WHEN 7 THEN `) one string per number."""
     values = np.asarray(values).astype(np.int64)
     if not values.size:
         return np.empty(0, dtype=object)
     low, high = int(values.min()), int(values.max())
-    if low < 0 or high >= max(len(_integer_table), 4 * len(values) + 4096):
-        return np.array(integer_texts_bulk(values), dtype=object)
-    if high >= len(_integer_table):
-        size = max(high + 1, 2 * len(_integer_table))
-        _integer_table = np.array(list(map(str, range(size))), dtype=object)
-    return _integer_table[values]
+    table = _integer_tables.get(template, np.empty(0, dtype=object))
+    if low < 0 or high >= max(len(table), 4 * len(values) + 4096):
+        texts = integer_texts_bulk(values)
+        return np.array(texts if template == "{}" else list(map(template.format, texts)),
+                        dtype=object)
+    if high >= len(table):
+        size = max(high + 1, 2 * len(table))
+        table = np.array(list(map(template.format, range(size))), dtype=object)
+        _integer_tables[template] = table
+    return table[values]
 
 
 def _binary_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray,
@@ -208,10 +235,13 @@ def _binary_forms(x: np.ndarray, forms: np.ndarray, at: np.ndarray,
     odd, shift = odd >> zeros, power - 53 + zeros
     one_step = (shift != 0) & (np.abs(shift) <= POWER_OF_TWO_STEP)
     opening, closing = wrap
-    forms[at[one_step]] = [f"{opening}(CAST({o} AS REAL){' * ' if s > 0 else ' / '}"
-                           f"{_POWERS_OF_TWO[abs(s)]}){closing}"
-                           for o, s in zip(integer_texts_bulk(odd[one_step]),
-                                           shift[one_step].tolist(), strict=True)]
+    # Each form's tail by shift (-62 .. 62), made once: per value, only the odd integer
+    # is formatted.
+    tails = np.array([f"){' * ' if s > 0 else ' / '}{_POWERS_OF_TWO[abs(s)]}){closing}"
+                      for s in range(-POWER_OF_TWO_STEP, POWER_OF_TWO_STEP + 1)], dtype=object)
+    forms[at[one_step]] = [f"{opening}(CAST({o} AS REAL{tail}" for o, tail in
+                           zip(odd[one_step].tolist(),
+                               tails[shift[one_step] + POWER_OF_TWO_STEP].tolist(), strict=True)]
     for i in np.flatnonzero(~one_step).tolist():
         steps, op = [f"CAST({odd[i]} AS REAL)"], " * " if shift[i] > 0 else " / "
         for done in range(0, abs(int(shift[i])), POWER_OF_TWO_STEP):

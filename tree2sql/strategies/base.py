@@ -8,14 +8,14 @@ every strategy shares one set of exactness rules and goes through the same verif
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
 from tree2sql.dialects import Profile
 from tree2sql.errors import UserError
-from tree2sql.exact import bounds, integer_texts
+from tree2sql.exact import bounds, integer_texts, repeated
 from tree2sql.forest import Forest
 from tree2sql.shortest import shortest_texts
 
@@ -31,7 +31,7 @@ class LeafLiterals:
     may write `values` itself (text_arrays) without making literals at all.
     """
 
-    def __init__(self, values: np.ndarray, literals: Callable[[np.ndarray], list[str]],
+    def __init__(self, values: np.ndarray, literals: Callable[[np.ndarray], Sequence[str]],
                  is_leaf: np.ndarray, plain: bool) -> None:
         self.values, self.plain = values, plain
         self._make, self._is_leaf = literals, is_leaf
@@ -41,13 +41,14 @@ class LeafLiterals:
         literal = self._table()[node]
         return self._make(self.values[node:node + 1])[0] if literal is None else literal
 
-    def at(self, nodes: np.ndarray) -> list[str]:
-        """The literals of `nodes` (leaves, or nodes where a shape cut the tree), in bulk."""
+    def at(self, nodes: np.ndarray) -> np.ndarray:
+        """The literals of `nodes` (leaves, or nodes where a shape cut the tree), in bulk,
+        as an object array (what the shapes place them in)."""
         found = self._table()[nodes]
-        missing = np.flatnonzero(found == None)  # noqa: E711 (elementwise test)
+        missing = np.flatnonzero(~self._is_leaf[nodes])
         if missing.size:  # not leaves: made on their own
             found[missing] = self._make(self.values[nodes[missing]])
-        return found.tolist()
+        return found
 
     def _table(self) -> np.ndarray:
         """Literal by node id (None at split nodes), made on first use."""
@@ -58,11 +59,13 @@ class LeafLiterals:
         return self._literals
 
 
-def leaf_literals(leaf_value: LeafValue, nodes: np.ndarray) -> list[str]:
-    """`leaf_value` of each node: in bulk where it is a LeafLiterals."""
+def leaf_literals(leaf_value: LeafValue, nodes: np.ndarray) -> np.ndarray:
+    """`leaf_value` of each node, as an object array: in bulk where it is a LeafLiterals."""
     if isinstance(leaf_value, LeafLiterals):
         return leaf_value.at(nodes)
-    return list(map(leaf_value, nodes.tolist()))
+    texts = np.empty(len(nodes), dtype=object)
+    texts[:] = list(map(leaf_value, nodes.tolist()))
+    return texts
 
 
 class LiteralTable:
@@ -74,12 +77,13 @@ class LiteralTable:
     (a non-finite one raises, as `make` does).
     """
 
-    def __init__(self, make: Callable[[np.ndarray], list[str]], values: np.ndarray) -> None:
+    def __init__(self, make: Callable[[np.ndarray], Sequence[str]], values: np.ndarray) -> None:
         floats = np.asarray(values, dtype=np.float64).ravel()
         self._make, self._values = make, floats[np.isfinite(floats)]
         self._table: tuple[np.ndarray, np.ndarray] | None = None  # (bit patterns, texts)
 
-    def __call__(self, values: np.ndarray) -> list[str]:
+    def __call__(self, values: np.ndarray) -> Sequence[str]:
+        """The literals of `values`, as an object array where they come from the table."""
         if self._table is None:
             known = np.unique(self._values.view(np.int64))
             self._table = known, np.array(self._make(known.view(np.float64)), dtype=object)
@@ -93,7 +97,7 @@ class LiteralTable:
         unknown = np.flatnonzero(known[at] != bits)
         if unknown.size:
             texts[unknown] = self._make(floats[unknown])
-        return texts.tolist()
+        return texts
 
 
 @dataclass(frozen=True)
@@ -167,7 +171,7 @@ def number_texts(values: np.ndarray) -> list[str]:
     repeat) and integers come from a table of their texts."""
     if values.dtype.kind != "f":
         return integer_texts(values).tolist()
-    items = np.full(len(values), "0", dtype=object)
+    items = repeated("0", len(values))
     written = (values != 0) | np.signbit(values)
     distinct, where = np.unique(values[written].view(np.int64), return_inverse=True)
     items[written] = np.array(shortest_texts(distinct.view(np.float64)), dtype=object)[where]

@@ -99,6 +99,6 @@ class CaseLeaves(Strategy):
         size = (internal * (50 + 2 * feature_bytes(profile, forest) + literal_bytes(profile))
                 + leaves * (8 + 25 * forest.n_outputs) + 200 * len(forest.trees)
                 + 200 * forest.n_features + 4000)
-        depth = max(tree.depth() for tree in forest.trees)
+        depth = forest.depth()
         return Needs(size, case_depth=depth, expression_depth=2 * depth + 6,
                      select_columns=len(forest.trees) + forest.n_features + 4)

@@ -38,6 +38,8 @@ from tree2sql.strategies.nested_case import CaseText, side_by_side, split_condit
 DEFAULT_LEVELS = 8  # per stage, when a profile states neither a CASE limit nor stage_levels
 EXPRESSION_DEPTH_PER_LEVEL = 2  # a CASE level costs up to two levels of expression depth
 FLAT_IDS = 4  # ids a lookup lists flat rather than halving again
+WHEN = " WHEN {} THEN "  # an id listed flat (Lookups)
+BELOW = " < {} THEN "  # the id a search splits at (Lookups)
 # CASE levels of a stage's frontier search: each level taken from the walk can add a stage,
 # and a stage copies every row. SQLite, 20 fully grown trees (frontier ~160 ids), 50k rows:
 # flat 3.5-3.7 s, 2 levels 3.0 s, 3 levels 2.8-2.9 s, 4 levels 3.0 s, 7 levels 4.0 s.
@@ -104,27 +106,28 @@ class Lookups:
     Every lookup's text is laid out at once, level by level in numpy, with a hole for
     each value; each output (a class's values, the node ids a stage walks to) only fills
     one lookup's holes. Written one CASE per Python call, the searches took a third of a
-    fully grown forest's compile. A split writes five pieces around its halves (`CASE
-    WHEN n < `, the middle id, ` THEN `, left half, ` ELSE `, right half, ` END`); a flat
-    list `CASE n`, four per id (` WHEN `, id, ` THEN `, value) and its ending.
+    fully grown forest's compile. A split writes four pieces around its halves (`CASE
+    WHEN n`, ` < ` the middle id ` THEN `, left half, ` ELSE `, right half, ` END`); a flat
+    list `CASE n`, two per id (` WHEN id THEN `, value) and its ending.
     """
 
     def __init__(self, nodes: Sequence[str], ids: Sequence[Sequence[int]], levels: int,
                  otherwise: Sequence[str | None]) -> None:
         counts = np.array([len(i) for i in ids], dtype=np.int64)
         base = np.concatenate([[0], np.cumsum(counts)[:-1]])  # each lookup's first id
-        id_texts = integer_texts(np.concatenate([np.asarray(i, dtype=np.int64) for i in ids]))
+        every_id = np.concatenate([np.asarray(i, dtype=np.int64) for i in ids])
+        below, when_texts = integer_texts(every_id, BELOW), integer_texts(every_id, WHEN)
         opening = np.array([f"CASE {n}" for n in nodes], dtype=object)
-        below = np.array([f"CASE WHEN {n} < " for n in nodes], dtype=object)
+        test = np.array([f"CASE WHEN {n}" for n in nodes], dtype=object)
         ending = np.array([" END" if o is None else f" ELSE {o} END" for o in otherwise],
                           dtype=object)
         found = _search_levels(counts, levels, np.array([o is None for o in otherwise]))
         pieces = [np.empty(0, np.int64)] * (len(found) + 1)  # per level, each interval's
         for d in range(len(found) - 1, -1, -1):
             level, halves = found[d], pieces[d + 1]
-            pieces[d] = np.where(level.bare, 1, 2 + 4 * level.size)
+            pieces[d] = np.where(level.bare, 1, 2 + 2 * level.size)
             splits = int(level.split.sum())
-            pieces[d][level.split] = 5 + halves[:splits] + halves[splits:]
+            pieces[d][level.split] = 4 + halves[:splits] + halves[splits:]
         self._ends = np.cumsum(pieces[0])
         self._begins = self._ends - pieces[0]
         text = np.empty(int(self._ends[-1]), dtype=object)
@@ -134,26 +137,26 @@ class Lookups:
             at, look = start[level.split], level.look[level.split]
             left = pieces[d + 1][:len(at)]
             middle = base[look] + level.low[level.split] + level.size[level.split] // 2
-            text[at], text[at + 1], text[at + 2] = below[look], id_texts[middle], " THEN "
-            text[at + 3 + left], text[at + pieces[d][level.split] - 1] = " ELSE ", " END"
+            text[at], text[at + 1] = test[look], below[middle]
+            text[at + 2 + left], text[at + pieces[d][level.split] - 1] = " ELSE ", " END"
             holes[base[level.look[level.bare]] + level.low[level.bare]] = start[level.bare]
             at, look, size = start[level.flat], level.look[level.flat], level.size[level.flat]
-            text[at], text[at + 1 + 4 * size] = opening[look], ending[look]
+            text[at], text[at + 1 + 2 * size] = opening[look], ending[look]
             k = np.arange(int(size.sum())) - np.repeat(np.cumsum(size) - size, size)
-            listed = np.repeat(at, size) + 1 + 4 * k
+            listed = np.repeat(at, size) + 1 + 2 * k
             first = np.repeat(base[look] + level.low[level.flat], size) + k
-            text[listed], text[listed + 1], text[listed + 2] = " WHEN ", id_texts[first], " THEN "
-            holes[first] = listed + 3
-            start = np.concatenate([start[level.split] + 3, start[level.split] + 4 + left])
+            text[listed] = when_texts[first]
+            holes[first] = listed + 1
+            start = np.concatenate([start[level.split] + 2, start[level.split] + 3 + left])
         self._text, self._holes, self._base, self._counts = text, holes, base, counts
 
     def render(self, j: int, values: Sequence[str]) -> str:
-        """Lookup j's text, its holes filled with `values` (in the order of its ids)."""
+        """Lookup j's text, its holes filled with `values` (in the order of its ids): in
+        place, since every hole of the lookup is filled each time."""
         begin, end, first = int(self._begins[j]), int(self._ends[j]), int(self._base[j])
-        text = self._text[begin:end].copy()
-        text[self._holes[first:first + int(self._counts[j])] - begin] = np.array(
+        self._text[self._holes[first:first + int(self._counts[j])]] = np.asarray(
             values, dtype=object)
-        return "".join(text.tolist())
+        return "".join(self._text[begin:end].tolist())
 
 
 def lookup_levels(count: int) -> int:
@@ -192,7 +195,7 @@ class DepthStaged(Strategy):
         """
         if self._stages is None:
             k = levels_per_stage(ctx.profile)
-            self._depths = [tree.node_depths() for tree in ctx.forest.trees]
+            self._depths = ctx.forest.node_depths()
             deepest = max(int(d.max()) for d in self._depths)
             plan, start = [(0, k, 0)], k
             while start < deepest:
@@ -244,10 +247,12 @@ class DepthStaged(Strategy):
                     count = len(frontiers[t])
                     steps[t] = lookups.render(j, walked[root:root + count])
                     root += count
-            columns = [f"{step} AS {node}" for step, node in zip(steps, nodes, strict=True)]
+            # One join writes the stage: a stage is megabytes, and each copy costs.
+            parts = ["SELECT ", ",\n  ".join(carried)]
+            for step, node in zip(steps, nodes, strict=True):
+                parts += [",\n  ", step, " AS ", node]
             name = ctx.prefix(f"level{start}")
-            stages.append((name, "SELECT " + ",\n  ".join(carried + columns)
-                           + f"\nFROM {source}"))
+            stages.append((name, "".join([*parts, f"\nFROM {source}"])))
             source = name
         return stages
 
@@ -268,7 +273,7 @@ class DepthStaged(Strategy):
 
     def needs(self, forest: Forest, profile: Profile) -> Needs:
         k = levels_per_stage(profile)
-        deepest = max(tree.depth() for tree in forest.trees)
+        deepest = forest.depth()
         step = k + 1 - min(DISPATCH_LEVELS, k) if searches(profile) else k  # later stages
         stages = 1 + -(-max(0, deepest - k) // step)
         internal = sum(int((tree.left != LEAF).sum()) for tree in forest.trees)

@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 
 from tree2sql.dialects import Profile
-from tree2sql.exact import integer_texts
+from tree2sql.exact import integer_texts, repeated
 from tree2sql.forest import LEAF, Forest
 from tree2sql.strategies.base import Context, LeafLiterals, LeafValue, Needs, require_keys
 from tree2sql.strategies.nested_case import NestedCase, every_tree
@@ -38,36 +38,34 @@ PACKED_BITS = 62  # bits of a signed 64-bit integer the packed counts may use
 
 def leaf_counts(forest: Forest) -> tuple[list[np.ndarray], int] | str:
     """Per tree, each leaf's packed code (0 at split nodes), and the bits per count; or why
-    the forest's leaves are not exactly counts over samples."""
+    the forest's leaves are not exactly counts over samples. Every tree's leaves are
+    checked and packed in one numpy pass."""
     if not forest.is_classifier or not forest.aggregation.mean:
         return "leaf_counts needs a forest classifier (mean of class fractions)"
     if any(tree.samples is None for tree in forest.trees):
         return "leaf_counts needs the samples per leaf, which this model does not record"
-    counted = []
-    for tree in forest.trees:
-        leaf = tree.left == LEAF
-        samples = np.rint(tree.samples[leaf])
-        counts = np.rint(tree.value[leaf] * samples[:, None])
-        with np.errstate(divide="ignore", invalid="ignore"):
-            exact = (counts / samples[:, None] == tree.value[leaf]).all()
-        if not (exact and (samples >= 1).all() and (counts.sum(axis=1) == samples).all()):
-            return "leaf_counts: a leaf's values are not whole counts over its samples"
-        counted.append((leaf, samples.astype(np.int64), counts.astype(np.int64)))
-    bits = max(int(samples.max()) for _, samples, _ in counted).bit_length()
-    classes = forest.trees[0].value.shape[1]
+    leaves = [tree.left == LEAF for tree in forest.trees]
+    value = np.concatenate([tree.value[leaf] for tree, leaf in zip(forest.trees, leaves,
+                                                                   strict=True)])
+    samples = np.rint(np.concatenate([tree.samples[leaf] for tree, leaf in zip(
+        forest.trees, leaves, strict=True)]))
+    counts = np.rint(value * samples[:, None])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        exact = (counts / samples[:, None] == value).all()
+    if not (exact and (samples >= 1).all() and (counts.sum(axis=1) == samples).all()):
+        return "leaf_counts: a leaf's values are not whole counts over its samples"
+    samples, counts = samples.astype(np.int64), counts.astype(np.int64)
+    bits, classes = int(samples.max()).bit_length(), value.shape[1]
     if bits * classes > PACKED_BITS:
         return f"leaf_counts: {classes} counts of {bits} bits do not fit {PACKED_BITS} bits"
-    codes = []
-    for leaf, samples, counts in counted:
-        code = samples.copy()
-        for k in range(1, classes):
-            code += counts[:, k] << (bits * k)
-        if zero_on_top(bits, classes):
-            code += counts[:, 0] << (bits * classes)
-        packed = np.zeros(len(leaf), dtype=np.int64)
-        packed[leaf] = code
-        codes.append(packed)
-    return codes, bits
+    code = samples.copy()
+    for k in range(1, classes):
+        code += counts[:, k] << (bits * k)
+    if zero_on_top(bits, classes):
+        code += counts[:, 0] << (bits * classes)
+    packed = np.zeros(forest.n_nodes, dtype=np.int64)
+    packed[np.concatenate(leaves)] = code
+    return np.split(packed, np.cumsum([tree.n_nodes for tree in forest.trees])[:-1]), bits
 
 
 def zero_on_top(bits: int, classes: int) -> bool:
@@ -103,7 +101,7 @@ class LeafCounts(NestedCase):
         if self._code_texts is None:  # every tree's leaf codes by node, written at once
             codes = np.concatenate(packed[0])
             leaves = np.flatnonzero(np.concatenate([t.left == LEAF for t in ctx.forest.trees]))
-            self._code_texts = np.full(len(codes), "0", dtype=object)
+            self._code_texts = repeated("0", len(codes))
             self._code_texts[leaves] = integer_texts(codes[leaves])
         walks = self._cases[0].render_roots(trees, self._code_texts)
         return [f"{walk} AS {self._code(ctx, t)}" for t, walk in zip(trees, walks, strict=True)]

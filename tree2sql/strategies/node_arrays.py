@@ -93,7 +93,7 @@ class NodeArrays(Strategy):
              "SELECT " + ",\n  ".join([*ctx.keys, ctx.ok, f"{row_array} AS {x}", *start])
              + f"\nFROM {ctx.source}"),
         ]
-        depth = max(tree.depth() for tree in forest.trees)
+        depth = forest.depth()
         for level in range(1, depth + 1):
             steps = [f"{self._step(ctx, t)} AS {self._name(ctx, 'n', t)}"
                      for t in range(len(forest.trees))]
@@ -122,6 +122,6 @@ class NodeArrays(Strategy):
         return self._index(ctx, self._array(ctx, items), self._name(ctx, "n", tree_index))
 
     def statement_size_estimate(self, forest: Forest) -> int:
-        depth = max(tree.depth() for tree in forest.trees)
+        depth = forest.depth()
         return 90 * forest.n_nodes + 200 * len(forest.trees) * (depth + forest.n_outputs)
 
