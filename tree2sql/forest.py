@@ -257,9 +257,23 @@ class Forest:
                 tree.__dict__["_depths"] = depths[offset:offset + size]  # its cached_property
         return [tree.node_depths() for tree in self.trees]
 
+    def tree_depths(self) -> list[int]:
+        """Each tree's depth (`Tree.depth`)."""
+        return [int(depths.max()) for depths in self.node_depths()]
+
     def depth(self) -> int:
         """The deepest tree's depth."""
-        return max(int(depths.max()) for depths in self.node_depths())
+        return max(self.tree_depths())
+
+    @functools.cached_property
+    def starts(self) -> np.ndarray:
+        """Where each tree's nodes begin, then where the last tree's end, with every tree's
+        nodes laid end to end in tree order (as shapes lay out a forest at once)."""
+        return np.cumsum([0, *(tree.n_nodes for tree in self.trees)])
+
+    def by_tree(self, laid_out: np.ndarray) -> list[np.ndarray]:
+        """Each tree's view of an array over every tree's nodes laid end to end."""
+        return np.split(laid_out, self.starts[1:-1])
 
     @property
     def is_classifier(self) -> bool:

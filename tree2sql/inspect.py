@@ -155,7 +155,7 @@ class Inspection:
 def inspect_forest(forest: Forest, dialects: Sequence[str] | None = None,
                    measure_limit: int | None = MEASURE_LIMIT) -> Inspection:
     """The full report. `measure_limit=None` compiles every shape whatever the size."""
-    depths = [int(d.max()) for d in forest.node_depths()]
+    depths = forest.tree_depths()
     leaves = [int(tree.is_leaf().sum()) for tree in forest.trees]
     nodes = [tree.n_nodes for tree in forest.trees]
     profiles = [load_profile(name) for name in (dialects or available())]

@@ -146,9 +146,7 @@ class Context:
               features: list[str], identity: list[str]) -> Context:
         every = bounds(np.concatenate([tree.threshold for tree in forest.trees]),
                        forest.comparison)  # one pass for the forest, then a view per tree
-        ends = np.cumsum([tree.n_nodes for tree in forest.trees])
-        return cls(forest, profile, source, keys, ok, features, np.split(every, ends[:-1]),
-                   identity)
+        return cls(forest, profile, source, keys, ok, features, forest.by_tree(every), identity)
 
     def prefix(self, name: str) -> str:
         """A quoted internal name (never clashes with user columns, see compiler)."""

@@ -196,7 +196,7 @@ class DepthStaged(Strategy):
         if self._stages is None:
             k = levels_per_stage(ctx.profile)
             self._depths = ctx.forest.node_depths()
-            deepest = max(int(d.max()) for d in self._depths)
+            deepest = ctx.forest.depth()
             plan, start = [(0, k, 0)], k
             while start < deepest:
                 dispatch = 1
@@ -217,9 +217,9 @@ class DepthStaged(Strategy):
     def stages(self, ctx: Context) -> list[tuple[str, str]]:
         plan = self._plan(ctx)
         trees = ctx.forest.trees
-        deepest = [int(d.max()) for d in self._depths]
+        deepest = ctx.forest.tree_depths()
         carried = [*ctx.keys, ctx.ok, *ctx.features]
-        stacked, bound, offsets = side_by_side(trees, ctx.bounds)
+        stacked, bound, offsets = side_by_side(ctx.forest, ctx.bounds)
         splits = split_conditions(ctx, stacked, bound)
         # Each stacked node's text as its own tree's node id: what a cut walk ends in.
         local_ids = integer_texts(np.arange(stacked.n_nodes) - np.repeat(

@@ -65,7 +65,7 @@ def leaf_counts(forest: Forest) -> tuple[list[np.ndarray], int] | str:
         code += counts[:, 0] << (bits * classes)
     packed = np.zeros(forest.n_nodes, dtype=np.int64)
     packed[np.concatenate(leaves)] = code
-    return np.split(packed, np.cumsum([tree.n_nodes for tree in forest.trees])[:-1]), bits
+    return forest.by_tree(packed), bits
 
 
 def zero_on_top(bits: int, classes: int) -> bool:

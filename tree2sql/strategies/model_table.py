@@ -180,7 +180,7 @@ class ModelTable(Strategy):
         values = [ctx.prefix(f"v{tree_index}_{k}") for k in range(K)]
         if np.array_equal(wanted, integer_texts(leaves)):
             return ctx.prefix(f"n{tree_index}")
-        first = sum(t.n_nodes for t in ctx.forest.trees[:tree_index])  # its first node
+        first = int(ctx.forest.starts[tree_index])
         for k in range(K):
             if np.array_equal(wanted, self._stored_literals(ctx, k)[first + leaves]):
                 return values[k]

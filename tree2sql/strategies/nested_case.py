@@ -63,12 +63,12 @@ def _openings(features: Sequence[str]) -> np.ndarray:
                       f"CASE WHEN {x} IS NOT NULL"] for x in features], dtype=object)
 
 
-def side_by_side(trees: Sequence[Tree], bounds: Sequence[np.ndarray],
+def side_by_side(forest: Forest, bounds: Sequence[np.ndarray],
                  ) -> tuple[Tree, np.ndarray, np.ndarray]:
-    """Several trees as one node space (each tree's ids shifted past the previous trees'),
-    its bounds, and each tree's offset (where its root is): one numpy pass lays out
-    every tree at once, instead of one pass per tree."""
-    offsets = np.cumsum([0] + [tree.n_nodes for tree in trees[:-1]])
+    """The forest's trees as one node space (each tree's ids shifted past the previous
+    trees'), its bounds, and each tree's offset (where its root is): one numpy pass lays
+    out every tree at once, instead of one pass per tree."""
+    trees, offsets = forest.trees, forest.starts[:-1]
 
     def shifted(children: str) -> np.ndarray:
         return np.concatenate([np.where(getattr(tree, children) == LEAF, LEAF,
@@ -183,8 +183,8 @@ class CaseText:
         # pieces written in place order touch memory in sequence, several times faster
         # than in level order for a fully grown forest's million pieces.
         node_at = np.full(int(pieces[by_level[0]].sum()), -1, dtype=np.int64)
-        node_at[start[reached[test[reached] | hole[reached]]]] = reached[
-            test[reached] | hole[reached]]
+        shown = reached[test[reached] | hole[reached]]
+        node_at[start[shown]] = shown
         placed = np.flatnonzero(node_at >= 0)
         written = node_at[placed]
         is_hole = hole[written]
@@ -239,7 +239,7 @@ def nested_case(tree: Tree, splits: Splits, leaf_value: LeafValue, root: int = 0
 def every_tree(ctx: Context) -> tuple[CaseText, np.ndarray]:
     """Every tree's nested CASE laid out in one pass, and each tree's node offset in it
     (for `CaseText.render_root`)."""
-    stacked, bound, offsets = side_by_side(ctx.forest.trees, ctx.bounds)
+    stacked, bound, offsets = side_by_side(ctx.forest, ctx.bounds)
     return CaseText(stacked, split_conditions(ctx, stacked, bound), offsets), offsets
 
 

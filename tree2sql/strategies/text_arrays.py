@@ -123,7 +123,7 @@ class TextArrays(Strategy):
     def _depths(self, forest: Forest) -> list[int]:
         """Each tree's depth, listed once per forest (every stage and term asks)."""
         if self._tree_depths is None or self._tree_depths[0] is not forest:
-            self._tree_depths = (forest, [int(d.max()) for d in forest.node_depths()])
+            self._tree_depths = (forest, forest.tree_depths())
         return self._tree_depths[1]
 
     def depth(self, forest: Forest) -> int:
